@@ -1,14 +1,22 @@
 """Decay fits: from per-probe correlations to SPAM-robust linear observations of the unital block.
 
-(The decay-fitting code lands here; this module already fixes the contract that the
-reconstruction stage consumes.)
+The model ``f_A(m) = c * lambda_A ** (m - 1)`` with one constant ``c`` shared by every probe
+(``../THEORY.md``) is fitted jointly; the decays become :class:`LinearObservations`, the
+contract consumed by the reconstruction stage.
 """
 
 from __future__ import annotations
 
+import math
+import warnings as _warnings
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.optimize
+import scipy.stats
+
+from robusttomo.estimate import BlockKind, Correlations, ProbeSet, compute_correlations
 
 
 @dataclass(frozen=True)
@@ -50,3 +58,497 @@ class LinearObservations:
     def n_observations(self) -> int:
         """Number of observations ``k``."""
         return int(self.values.shape[0])
+
+
+# ---- decay fits -----------------------------------------------------------------------------
+
+#: A length with fewer sequences than this gets a warning: its standard error is unreliable.
+MIN_SEQUENCES = 20
+#: p-value below which a diagnostic test raises a warning.
+WARN_P = 1e-3
+
+
+@dataclass(frozen=True)
+class DecayResult:
+    """Per-probe decays ``lambda_A`` with the shared SPAM constant and diagnostics.
+
+    Tables indexed ``[probe, length]`` hold NaN where a probe was not evaluated at a length
+    (see the information rule in :mod:`robusttomo.estimate`); the length-1 column is the
+    probe-independent value ``f(1) = c``.
+
+    Attributes
+    ----------
+    n_qubits : int
+    kind : BlockKind
+        ``REFERENCE`` (decays of the error channel ``L``) or ``INTERLEAVED`` (of the composite
+        ``L_int = L_G o (G L G^dagger)``, probes ``B o G``).
+    probes : ProbeSet
+    lengths : tuple of int
+    n_sequences : ndarray, shape (n_lengths,), int
+    control_variate : bool
+        Whether the control variate was used.
+    means, stderr : ndarray, shape (P, n_lengths)
+        Estimate of ``f_A(m)`` (mean over sequences, control variate applied) and its standard
+        error from the spread between sequences.
+    median_of_means : ndarray, shape (P, n_lengths)
+        Median over ``batches`` contiguous batches of sequences of the batch means.
+    beta : ndarray, shape (P, n_lengths)
+        Fitted control-variate coefficient (1.0 where the fallback applied, NaN when off).
+    variance_reduction : ndarray, shape (P, n_lengths)
+        Per-sequence variance without the control variate divided by the variance with it.
+    spam_constant, spam_constant_stderr : float
+        The shared constant ``c`` of ``f_A(m) = c lambda_A**(m-1)`` and its standard error.
+    lambdas, lambda_stderr : ndarray, shape (P,)
+        Fitted decays (in [-1, 1]) and standard errors.
+    lambda_covariance : ndarray, shape (P, P)
+        Covariance of the fitted decays (sandwich estimate from the between-sequence spread).
+    m2_statistic : ndarray, shape (D, D) or None
+        The length-2 sufficient statistic ``M`` (control variate applied), normalized Pauli
+        basis, ``E[M] = c B / ((d*d - 1) kappa)``.
+    m2_covariance : ndarray, shape (D*D, D*D) or None
+        Covariance of ``M.reshape(-1)`` (None for three qubits, where it would be 126 MB).
+    chi2, dof : float, int
+        Weighted residual sum of squares of the joint fit and its degrees of freedom.
+    residuals : ndarray, shape (P, n_lengths)
+        Normalized residuals ``(mean - model) / stderr`` (NaN where not evaluated).
+    probe_constants, probe_constants_stderr : ndarray, shape (P,)
+        Constant of a per-probe fit with its own free constant (NaN for probes with fewer than
+        two lengths >= 2); a wide spread means the gate-independent model is violated.
+    constant_spread_p : float
+        p-value of the chi-square test that every per-probe constant equals ``c`` (NaN if none).
+    warnings : tuple of str
+        Plain-words warnings.
+    bootstrap_lambdas : ndarray, shape (B, P) or None
+        Non-parametric bootstrap replicates (sequences resampled within each length).
+    bootstrap_spam : ndarray, shape (B,) or None
+    """
+
+    n_qubits: int
+    kind: BlockKind
+    probes: ProbeSet
+    lengths: tuple[int, ...]
+    n_sequences: np.ndarray
+    control_variate: bool
+    means: np.ndarray
+    stderr: np.ndarray
+    median_of_means: np.ndarray
+    beta: np.ndarray
+    variance_reduction: np.ndarray
+    spam_constant: float
+    spam_constant_stderr: float
+    lambdas: np.ndarray
+    lambda_stderr: np.ndarray
+    lambda_covariance: np.ndarray
+    m2_statistic: np.ndarray | None
+    m2_covariance: np.ndarray | None
+    chi2: float
+    dof: int
+    residuals: np.ndarray
+    probe_constants: np.ndarray
+    probe_constants_stderr: np.ndarray
+    constant_spread_p: float
+    warnings: tuple[str, ...]
+    bootstrap_lambdas: np.ndarray | None
+    bootstrap_spam: np.ndarray | None
+
+    @property
+    def reduced_chi2(self) -> float:
+        """``chi2 / dof`` (NaN when ``dof == 0``)."""
+        return self.chi2 / self.dof if self.dof > 0 else float("nan")
+
+    @property
+    def identity_decay(self) -> float:
+        """The identity probe's decay: the usual benchmarking decay ``p``."""
+        return float(self.lambdas[self._ident()])
+
+    @property
+    def identity_decay_stderr(self) -> float:
+        """Standard error of :attr:`identity_decay`."""
+        return float(self.lambda_stderr[self._ident()])
+
+    @property
+    def average_gate_fidelity(self) -> float:
+        """``F_avg = 1 - (d - 1)(1 - p)/d`` of the measured channel ("Scalable and robust
+        randomized benchmarking of quantum processes", PRL 106, 180504 (2011)); a fidelity."""
+        d = 2**self.n_qubits
+        return 1.0 - (d - 1) * (1.0 - self.identity_decay) / d
+
+    @property
+    def average_gate_fidelity_stderr(self) -> float:
+        """Standard error of :attr:`average_gate_fidelity`."""
+        d = 2**self.n_qubits
+        return (d - 1) / d * self.identity_decay_stderr
+
+    def _ident(self) -> int:
+        i = self.probes.identity_index
+        if i is None:
+            raise ValueError("the probe set has no identity probe")
+        return i
+
+    def observations(self) -> LinearObservations:
+        """The decays as :class:`LinearObservations` of the unital block for the reconstruction.
+
+        Row ``a`` of the design is ``B_a.reshape(-1) / (d*d - 1)`` (``lambda_a =
+        tr(B_a^T B) / (d*d - 1)``), ``B`` the unital block of ``L`` (reference) or ``L_int``
+        (interleaved).
+        """
+        d2 = 4**self.n_qubits
+        design = self.probes.unital_blocks.reshape(self.probes.n_probes, -1) / (d2 - 1)
+        return LinearObservations(self.n_qubits, design, self.lambdas.copy(), self.lambda_covariance.copy(),
+                                  self.probes.labels, None if self.bootstrap_lambdas is None
+                                  else self.bootstrap_lambdas.copy())
+
+
+def _cv_means(values: np.ndarray, ideal: np.ndarray, mu: np.ndarray, use_cv: bool):
+    """Per-column control-variate estimate; returns (mean, per-sequence corrected values, beta)."""
+    if not use_cv:
+        return values.mean(axis=0), values, np.full(values.shape[1], np.nan)
+    gm = ideal.mean(axis=0)
+    gc = ideal - gm
+    var = np.einsum("kq,kq->q", gc, gc)
+    cov = np.einsum("kq,kq->q", values - values.mean(axis=0), gc)
+    scale = np.maximum(1.0, np.abs(gm)) ** 2 * values.shape[0]
+    degenerate = var <= 1e-24 * scale  # every G_s equal: least squares undefined, use beta = 1
+    beta = np.where(degenerate, 1.0, cov / np.where(degenerate, 1.0, var))
+    corrected = values - beta * (ideal - mu)
+    return corrected.mean(axis=0), corrected, beta
+
+
+@dataclass(frozen=True)
+class _Design:
+    """Bookkeeping of the joint fit: which (probe, length) data exist."""
+
+    n_probes: int
+    lengths: tuple[int, ...]
+    probe_rows: tuple[np.ndarray, ...]  # per length index >= 1: probe positions
+    slow: np.ndarray  # probes with data at lengths >= 3
+
+
+def _make_design(corr: Correlations) -> _Design:
+    rows = tuple(s.probes for s in corr.stats)
+    slow = np.unique(np.concatenate([s.probes for s in corr.stats if s.length >= 3] or [np.zeros(0, np.int64)]))
+    return _Design(corr.probes.n_probes, corr.lengths, rows, slow.astype(np.int64))
+
+
+def _length_means(corr: Correlations, use_cv: bool, picks: list[np.ndarray] | None = None):
+    out = []
+    for i, s in enumerate(corr.stats):
+        vals, ideal = (s.values, s.ideal) if picks is None else (s.values[picks[i]], s.ideal[picks[i]])
+        mean, corrected, beta = _cv_means(vals, ideal, s.mu, use_cv)
+        out.append((mean, corrected, beta))
+    return out
+
+
+def _joint_fit(design: _Design, corr: Correlations, means: list[np.ndarray], sig: list[np.ndarray],
+               start: np.ndarray | None = None) -> tuple[float, np.ndarray]:
+    """Weighted least squares for ``f_A(m) = c lambda_A**(m-1)``; returns (c, lambdas (P,)).
+
+    Objective: sum over (probe, length) data of ((mean - c lambda**(m-1)) / stderr)**2, with
+    the probe-independent length-1 point ``(mean_1 - c)/stderr_1`` once.  Probes seen only at
+    length 2 are fitted exactly (``lambda = mean_2 / c``) and do not influence ``c``.
+    """
+    lengths = corr.lengths
+    y1, s1 = float(means[0][0]), float(sig[0][0])
+    pos2 = lengths.index(2) if 2 in lengths else None
+    slow = design.slow
+    lam = np.zeros(design.n_probes)
+    if pos2 is not None:
+        lam[design.probe_rows[pos2]] = means[pos2] / y1 if y1 != 0 else 0.0
+    if slow.size == 0:
+        c = y1
+    else:
+        slot = {int(p): i for i, p in enumerate(slow)}
+        terms = []  # (length, slow slot, mean, sigma)
+        for li, m in enumerate(lengths):
+            if m == 1:
+                continue
+            rows = design.probe_rows[li]
+            for j, p in enumerate(rows):
+                if int(p) in slot:
+                    terms.append((m, slot[int(p)], means[li][j], sig[li][j]))
+        mm = np.array([t[0] for t in terms], dtype=float)
+        ss = np.array([t[1] for t in terms], dtype=np.int64)
+        yy = np.array([t[2] for t in terms])
+        sg = np.array([t[3] for t in terms])
+
+        def resid(theta):
+            c, lm = theta[0], theta[1:]
+            return np.concatenate([[(y1 - c) / s1], (yy - c * lm[ss] ** (mm - 1)) / sg])
+
+        def jac(theta):
+            c, lm = theta[0], theta[1:]
+            j = np.zeros((1 + yy.size, theta.size))
+            j[0, 0] = -1.0 / s1
+            j[1:, 0] = -(lm[ss] ** (mm - 1)) / sg
+            j[np.arange(1, 1 + yy.size), 1 + ss] = -c * (mm - 1) * lm[ss] ** (mm - 2) / sg
+            return j
+
+        if start is None:
+            x0 = np.concatenate([[y1], np.clip(lam[slow], -0.999, 0.999)])
+        else:
+            x0 = start
+        lo = np.concatenate([[-np.inf], -np.ones(slow.size)])
+        hi = np.concatenate([[np.inf], np.ones(slow.size)])
+        x0 = np.clip(x0, lo + 1e-9, hi - 1e-9)
+        sol = scipy.optimize.least_squares(resid, x0, jac=jac, bounds=(lo, hi), method="trf",
+                                           x_scale="jac", xtol=1e-12, ftol=1e-12, gtol=1e-12)
+        c = float(sol.x[0])
+        if pos2 is not None:
+            lam[design.probe_rows[pos2]] = means[pos2] / c
+        lam[slow] = sol.x[1:]
+    return c, np.clip(lam, -1.0, 1.0)
+
+
+def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
+    """Covariance of (c, lambdas) by the sandwich formula, plus chi2 and normalized residuals."""
+    p = design.n_probes
+    lengths = corr.lengths
+    rows_j, rows_res = [], []
+    blocks = []
+    fast_only = np.ones(p, dtype=bool)
+    fast_only[design.slow] = False
+    for li, m in enumerate(lengths):
+        k = corrected[li].shape[0]
+        cov = np.atleast_2d(np.cov(corrected[li], rowvar=False, ddof=1)) / k
+        if m == 1:
+            jrow = np.zeros((1, p + 1))
+            jrow[0, 0] = 1.0
+            rows_j.append(jrow)
+            rows_res.append(means[0] - c)
+            blocks.append(cov)
+            continue
+        pr = design.probe_rows[li]
+        jrow = np.zeros((pr.size, p + 1))
+        lm = lam[pr]
+        jrow[:, 0] = lm ** (m - 1)
+        jrow[np.arange(pr.size), 1 + pr] = c * (m - 1) * lm ** (m - 2)
+        rows_j.append(jrow)
+        rows_res.append(means[li] - c * lm ** (m - 1))
+        blocks.append(cov)
+    jm = np.vstack(rows_j)
+    res = np.concatenate(rows_res)
+    sg = np.concatenate(sig)
+    w = 1.0 / sg**2
+    sigma = _block_diag(blocks)
+    # Fast probes' length-2 point is fitted exactly; its weight only scales its own column.
+    h = jm.T @ (w[:, None] * jm)
+    hinv = np.linalg.pinv(h, rcond=1e-12, hermitian=True)
+    jw = jm.T * w
+    meat = jw @ sigma @ jw.T
+    cov = hinv @ meat @ hinv
+    chi2 = float(np.sum(res**2 * w))
+    dof = int(res.size - (1 + design.slow.size + int(fast_only.sum()) * (2 in lengths)))
+    return cov, chi2, max(dof, 0), res / sg
+
+
+def _block_diag(blocks: list[np.ndarray]) -> np.ndarray:
+    n = sum(b.shape[0] for b in blocks)
+    out = np.zeros((n, n))
+    i = 0
+    for b in blocks:
+        k = b.shape[0]
+        out[i:i + k, i:i + k] = b
+        i += k
+    return out
+
+
+def _own_constant_fit(ms: np.ndarray, ys: np.ndarray, ss: np.ndarray, c0: float, l0: float):
+    """Fit ``y = c_a lambda**(m-1)`` with a free constant; returns (c_a, stderr, chi2, dof)."""
+    def resid(t):
+        return (ys - t[0] * t[1] ** (ms - 1)) / ss
+
+    l0 = float(np.clip(l0, -0.999, 0.999))
+    sol = scipy.optimize.least_squares(resid, [c0, l0], bounds=([-np.inf, -1], [np.inf, 1]), method="trf")
+    j = sol.jac
+    try:
+        cov = np.linalg.inv(j.T @ j)
+        se = float(np.sqrt(max(cov[0, 0], 0.0)))
+    except np.linalg.LinAlgError:
+        se = float("nan")
+    return float(sol.x[0]), se, float(np.sum(sol.fun**2)), int(ys.size - 2)
+
+
+def _bootstrap_chunk(args):
+    corr, design, use_cv, sig, start, seeds = args
+    lam_out, c_out = [], []
+    for seed in seeds:
+        rng = np.random.default_rng(seed)
+        picks = [rng.integers(0, s.values.shape[0], size=s.values.shape[0]) for s in corr.stats]
+        lm = _length_means(corr, use_cv, picks)
+        c, lam = _joint_fit(design, corr, [x[0] for x in lm], sig, start=start)
+        lam_out.append(lam)
+        c_out.append(c)
+    return np.array(lam_out), np.array(c_out)
+
+
+def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: int = 200,
+               seed: int | None = None, batches: int = 10, jobs: int = 1) -> DecayResult:
+    """Fit ``f_A(m) = c lambda_A**(m-1)`` jointly over probes, with diagnostics and bootstrap.
+
+    Parameters
+    ----------
+    corr : Correlations
+        From :func:`robusttomo.estimate.compute_correlations`.
+    control_variate : bool, default True
+        Subtract ``beta (G_s - mu)`` per (probe, length) (see :mod:`robusttomo.estimate`).
+    bootstrap : int, default 200
+        Number of non-parametric bootstrap replicates (sequences resampled within each length;
+        each replicate re-fits the control variate and the decays). 0 disables it.
+    seed : int, optional
+        Seed of the bootstrap resampling.
+    batches : int, default 10
+        Number of contiguous batches of sequences for the median of means.
+    jobs : int, default 1
+        Worker processes for the bootstrap.
+
+    Returns
+    -------
+    DecayResult
+    """
+    if isinstance(bootstrap, bool) or not isinstance(bootstrap, (int, np.integer)) or bootstrap < 0:
+        raise ValueError(f"'bootstrap' must be a non-negative integer; got {bootstrap!r}")
+    if isinstance(batches, bool) or not isinstance(batches, (int, np.integer)) or batches < 1:
+        raise ValueError(f"'batches' must be a positive integer; got {batches!r}")
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise ValueError(f"'jobs' must be a positive integer; got {jobs!r}")
+    design = _make_design(corr)
+    lengths = corr.lengths
+    p = corr.probes.n_probes
+    nl = len(lengths)
+    lm = _length_means(corr, control_variate)
+    means = [x[0] for x in lm]
+    corrected = [x[1] for x in lm]
+    sig = [np.maximum(np.std(x[1], axis=0, ddof=1) / np.sqrt(x[1].shape[0]), 1e-15) for x in lm]
+    c, lam = _joint_fit(design, corr, means, sig)
+    cov, chi2, dof, nres = _sandwich(design, corr, c, lam, means, sig, corrected)
+
+    table = {k: np.full((p, nl), np.nan) for k in ("means", "stderr", "mom", "beta", "vr", "res")}
+    off = 0
+    for li, s in enumerate(corr.stats):
+        rows = np.arange(p) if s.length == 1 else s.probes
+        raw_var = np.var(s.values, axis=0, ddof=1)
+        cor_var = np.var(corrected[li], axis=0, ddof=1)
+        vr = np.where(cor_var > 0, raw_var / np.where(cor_var > 0, cor_var, 1.0), np.inf)
+        k = s.values.shape[0]
+        nb = min(batches, k)
+        edges = np.linspace(0, k, nb + 1).astype(int)
+        bm = np.array([corrected[li][edges[i]:edges[i + 1]].mean(axis=0) for i in range(nb)])
+        mom = np.median(bm, axis=0)
+        width = s.probes.size if s.length != 1 else 1
+        table["means"][rows, li] = means[li]
+        table["stderr"][rows, li] = sig[li]
+        table["mom"][rows, li] = mom
+        table["beta"][rows, li] = lm[li][2]
+        table["vr"][rows, li] = vr
+        table["res"][rows, li] = nres[off:off + width]
+        off += width
+
+    warn: list[str] = []
+    nseq = np.array([s.values.shape[0] for s in corr.stats])
+    for m, k in zip(lengths, nseq):
+        if k < MIN_SEQUENCES:
+            warn.append(f"length {m} has only {k} sequences; its standard errors are unreliable below "
+                        f"{MIN_SEQUENCES}: add sequences at this length")
+    # per-probe fits with a free constant
+    pc = np.full(p, np.nan)
+    pcs = np.full(p, np.nan)
+    ident = corr.probes.identity_index
+    for a in design.slow:
+        cols = [li for li, m in enumerate(lengths) if m >= 2 and not np.isnan(table["means"][a, li])]
+        if len(cols) < 2:
+            continue
+        ms = np.array([lengths[li] for li in cols], dtype=float)
+        ca, se, chi_a, dof_a = _own_constant_fit(ms, table["means"][a, cols], table["stderr"][a, cols],
+                                                 c, lam[a])
+        pc[a], pcs[a] = ca, se
+        if a == ident and dof_a >= 1:
+            pval = float(scipy.stats.chi2.sf(chi_a, dof_a))
+            if pval < WARN_P:
+                warn.append(f"the identity-probe decay is not single-exponential (chi-square {chi_a:.1f} "
+                            f"for {dof_a} degrees of freedom, p = {pval:.1e}): leakage, drift or "
+                            "non-Markovian noise; treat the figures with care")
+    ok = np.isfinite(pc) & np.isfinite(pcs) & (pcs > 0)
+    if ok.any():
+        spread_chi2 = float(np.sum(((pc[ok] - c) / pcs[ok]) ** 2))
+        spread_p = float(scipy.stats.chi2.sf(spread_chi2, int(ok.sum())))
+        if spread_p < WARN_P:
+            warn.append(f"per-probe constants spread more than their errors allow (p = {spread_p:.1e}): "
+                        "the noise may depend on the gate, violating the model")
+    else:
+        spread_p = float("nan")
+    if dof > 0:
+        pfit = float(scipy.stats.chi2.sf(chi2, dof))
+        if pfit < WARN_P:
+            warn.append(f"the decay model fits poorly (reduced chi-square {chi2 / dof:.2f}, p = {pfit:.1e})")
+    if not 0.0 < c <= 1.2:
+        warn.append(f"the SPAM constant c = {c:.3f} is outside (0, 1.2]: check the bit order and the plan")
+
+    # length-2 sufficient statistic
+    m2, m2cov = None, None
+    if corr.m2_u is not None:
+        ms = np.einsum("ki,kj->kij", corr.m2_u, corr.m2_v).reshape(corr.m2_u.shape[0], -1)
+        if control_variate:
+            mi = np.einsum("ki,kj->kij", corr.m2_u_ideal, corr.m2_v).reshape(ms.shape)
+            mic = mi - mi.mean(axis=0)
+            den = float(np.sum(mic * mic))
+            beta_m = float(np.sum((ms - ms.mean(axis=0)) * mic) / den) if den > 1e-24 else 1.0
+            ms = ms - beta_m * (mi - corr.m2_mu.reshape(-1))
+        dd = corr.m2_u.shape[1]
+        m2 = ms.mean(axis=0).reshape(dd, dd)
+        if corr.n_qubits <= 2:
+            m2cov = np.cov(ms, rowvar=False, ddof=1) / ms.shape[0]
+
+    boot_l = boot_c = None
+    if bootstrap > 0:
+        ss = np.random.SeedSequence(seed)
+        seeds = [int(s.generate_state(1)[0]) for s in ss.spawn(bootstrap)]
+        start = np.concatenate([[c], lam[design.slow]])
+        if jobs == 1:
+            boot_l, boot_c = _bootstrap_chunk((corr, design, control_variate, sig, start, seeds))
+        else:
+            chunks = np.array_split(np.array(seeds, dtype=np.int64), jobs)
+            with ProcessPoolExecutor(max_workers=jobs) as ex:
+                parts = list(ex.map(_bootstrap_chunk, [(corr, design, control_variate, sig, start,
+                                                        [int(x) for x in ch]) for ch in chunks if ch.size]))
+            boot_l = np.concatenate([x[0] for x in parts])
+            boot_c = np.concatenate([x[1] for x in parts])
+
+    lam_cov = cov[1:, 1:]
+    return DecayResult(
+        n_qubits=corr.n_qubits, kind=corr.kind, probes=corr.probes, lengths=lengths, n_sequences=nseq,
+        control_variate=control_variate, means=table["means"], stderr=table["stderr"],
+        median_of_means=table["mom"], beta=table["beta"], variance_reduction=table["vr"],
+        spam_constant=c, spam_constant_stderr=float(math.sqrt(max(cov[0, 0], 0.0))), lambdas=lam,
+        lambda_stderr=np.sqrt(np.clip(np.diag(lam_cov), 0.0, None)), lambda_covariance=lam_cov,
+        m2_statistic=m2, m2_covariance=m2cov, chi2=chi2, dof=dof, residuals=table["res"],
+        probe_constants=pc, probe_constants_stderr=pcs, constant_spread_p=spread_p,
+        warnings=tuple(warn), bootstrap_lambdas=boot_l, bootstrap_spam=boot_c,
+    )
+
+
+def estimate_decays(plan: object, counts: object, *, probes: ProbeSet | None = None,
+                    kind: BlockKind | str = BlockKind.REFERENCE, control_variate: bool = True,
+                    bootstrap: int = 200, seed: int | None = None, batches: int = 10,
+                    jobs: int = 1) -> DecayResult:
+    """SPAM-robust decays of every probe from one set of inverse-free sequences.
+
+    Computes the filtered correlations (:func:`robusttomo.estimate.compute_correlations`) and
+    fits them (:func:`fit_decays`); see those for the parameters.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> import robusttomo as rt
+    >>> from robusttomo.channels import depolarizing
+    >>> plan = rt.make_plan(n_qubits=1, lengths=[1, 2, 4, 8], sequences=60, shots=200, seed=1)
+    >>> device = rt.Device.build(1, error=depolarizing(1, 0.98), readout=[(0.03, 0.05)])
+    >>> counts = rt.simulate(plan, device, seed=2)
+    >>> res = rt.estimate_decays(plan, counts, bootstrap=0)
+    >>> bool(abs(res.identity_decay - 0.98) < 0.02)
+    True
+    """
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        corr = compute_correlations(plan, counts, probes=probes, kind=kind)
+        return fit_decays(corr, control_variate=control_variate, bootstrap=bootstrap, seed=seed,
+                          batches=batches, jobs=jobs)
