@@ -184,26 +184,32 @@ def _greedy_basis(blocks: np.ndarray, first: int, count: int, exclude: np.ndarra
 
     Starts with row ``first``; each step takes the candidate with the largest residual norm
     after projecting out the chosen rows (norms rounded to 1e-9, ties to the lowest index), so
-    the choice does not depend on floating-point noise of a particular BLAS.
+    the choice does not depend on floating-point noise of a particular BLAS.  Residual norms
+    are updated incrementally, one matrix-vector product per step.
     """
-    x = blocks.astype(float).copy()
-    chosen = [first]
+    x = np.asarray(blocks, dtype=float)
+    norms = np.einsum("ij,ij->i", x, x)
     avail = np.ones(x.shape[0], dtype=bool)
     avail[exclude] = False
-    q = x[first] / np.linalg.norm(x[first])
-    x -= np.outer(x @ q, q)
-    avail[first] = False
-    while len(chosen) < count:
-        norms = np.round(np.einsum("ij,ij->i", x, x), 9)
-        norms[~avail] = -1.0
-        k = int(np.argmax(norms))  # first maximum: lowest index on ties
-        if norms[k] <= 1e-9:
+    basis: list[np.ndarray] = []
+    chosen: list[int] = []
+    k = first
+    while True:
+        v = x[k].copy()
+        for q in basis:  # re-orthogonalize explicitly: stable even over thousands of steps
+            v -= (v @ q) * q
+        nv = np.linalg.norm(v)
+        if nv <= 1e-6:
             raise RuntimeError("candidate probes do not span the unital block")
-        q = x[k] / np.sqrt(norms[k])
-        x -= np.outer(x @ q, q)
+        q = v / nv
+        basis.append(q)
         chosen.append(k)
         avail[k] = False
-    return chosen
+        if len(chosen) == count:
+            return chosen
+        norms = norms - (x @ q) ** 2
+        score = np.where(avail, np.round(norms, 9), -1.0)
+        k = int(np.argmax(score))  # first maximum: lowest index on ties
 
 
 @functools.lru_cache(maxsize=None)
@@ -235,8 +241,17 @@ def default_probes(n_qubits: int, *, overcomplete: bool = False) -> ProbeSet:
     disjoint bases (450 probes) for two qubits.  For three qubits the scan runs over a fixed
     pseudo-random pool of Cliffords.
     """
+    from robusttomo._probe_tables import TABLES
+
     n = _pauli.check_n_qubits(n_qubits)
-    return probes_from_cliffords(n, np.array(_default_indices(n, bool(overcomplete)), dtype=np.int64))
+    key = (n, bool(overcomplete))
+    idx = TABLES[key] if key in TABLES else _default_indices(*key)
+    return _cached_probes(n, tuple(idx))
+
+
+@functools.lru_cache(maxsize=8)
+def _cached_probes(n: int, idx: tuple[int, ...]) -> ProbeSet:
+    return probes_from_cliffords(n, np.array(idx, dtype=np.int64))
 
 
 # ---- correlations ---------------------------------------------------------------------------

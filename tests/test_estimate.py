@@ -154,6 +154,14 @@ def test_default_probe_basis_is_full_deterministic_identity_first():
     assert default_probes(2, overcomplete=True).n_probes == 450
 
 
+def test_shipped_probe_tables_equal_a_fresh_scan():
+    from robusttomo._probe_tables import TABLES
+    from robusttomo.estimate import _default_indices
+
+    for key, idx in TABLES.items():
+        assert tuple(idx) == _default_indices.__wrapped__(*key), key
+
+
 def _simulate_plan(plan, err, prep, confusion, rng, shots):
     """Independent finite-shot reference simulator (PTM propagation + multinomial)."""
     n = plan.n_qubits
