@@ -202,6 +202,8 @@ class Channel:
         """Apply the channel to a ``(d, d)`` (or batched ``(..., d, d)``) matrix."""
         rho = np.asarray(rho, dtype=complex)
         d = self.dim
+        if rho.ndim < 2 or rho.shape[-2:] != (d, d):
+            raise ValueError(f"'rho' must have shape (..., {d}, {d}); got {rho.shape}")
         p = _pauli.pauli_stack(self._n)
         coeff = np.einsum("iba,...ab->...i", p, rho) / d  # rho = sum_j coeff_j P_j
         new = coeff @ self._ptm.T
@@ -222,6 +224,8 @@ class Channel:
 
     def tensor(self, other: Channel) -> Channel:
         """``self (x) other`` with ``self`` on the leftmost (lower-numbered) qubits."""
+        if not isinstance(other, Channel):
+            raise TypeError(f"'other' must be a Channel; got {type(other).__name__}")
         if self.n_qubits + other.n_qubits > 3:
             raise ValueError("tensor product would exceed 3 qubits")
         return Channel(np.kron(self._ptm, other._ptm), _trusted=True)
@@ -232,6 +236,8 @@ class Channel:
 
     def power(self, k: int) -> Channel:
         """``k``-fold composition, ``k >= 0``."""
+        if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 0:
+            raise ValueError(f"'k' must be a non-negative integer; got {k!r}")
         return Channel(np.linalg.matrix_power(self._ptm, int(k)), _trusted=True)
 
     # ---- predicates ---------------------------------------------------------------------
@@ -390,6 +396,8 @@ def random_channel(n_qubits: int, strength: float, rng: np.random.Generator, *, 
     import scipy.linalg
 
     n = _pauli.check_n_qubits(n_qubits)
+    if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)) or rank < 1:
+        raise ValueError(f"'rank' must be a positive integer; got {rank!r}")
     if not strength >= 0:
         raise ValueError(f"'strength' must be non-negative; got {strength!r}")
     d = 2**n
