@@ -1144,18 +1144,18 @@ class _BoundedCache:
         self.store: dict[int, object] = {}
 
     def get_many(self, keys: np.ndarray, compute) -> list:
-        missing = [int(k) for k in keys if int(k) not in self.store]
+        # read the hits before any eviction below can drop them
+        found = {int(k): self.store[int(k)] for k in keys if int(k) in self.store}
+        missing = list(dict.fromkeys(int(k) for k in keys if int(k) not in found))
         if missing:
             values = compute(np.array(missing, dtype=np.int64))
-            found = dict(zip(missing, values))
+            found.update(zip(missing, values))
             if len(self.store) + len(missing) > self.limit:
                 self.store.clear()
             for k, v in zip(missing[: self.limit], values[: self.limit]):
                 # a private read-only copy, so a cached entry keeps no large batch alive
                 self.store[k] = _frozen(v) if isinstance(v, np.ndarray) else v
-        else:
-            found = {}
-        return [found[int(k)] if int(k) in found else self.store[int(k)] for k in keys]
+        return [found[int(k)] for k in keys]
 
 
 _N3_UNITARIES = _BoundedCache(_N3_UNITARY_CACHE_SIZE)

@@ -537,3 +537,12 @@ def test_docstring_examples():
     result = doctest.testmod(clifford, verbose=False)
     assert result.attempted >= 4
     assert result.failed == 0
+
+
+def test_three_qubit_cache_eviction_keeps_earlier_hits():
+    """Regression: a batch larger than the cache limit after a warm cache must not lose hits."""
+    from robusttomo.clifford import clifford_circuits
+
+    first = clifford_circuits(3, np.arange(10000))
+    second = clifford_circuits(3, np.arange(5000, 17000))
+    assert second[:5000] == first[5000:]
