@@ -71,3 +71,50 @@ def check_schema(path: object, found: object, *, kind: str, supported: tuple[int
         raise DataError(f"{path}: {kind} file has schema_version {version}; this robusttomo reads "
                         f"{', '.join(map(str, supported))}; upgrade robusttomo or rewrite the file")
     return version
+
+
+# ---- HDF5 text and attribute safety ---------------------------------------------------------
+# Variable-length strings live in the file's global heap, and a corrupt heap can make the HDF5
+# library loop forever while reading them.  Our files therefore store fixed-length UTF-8 text
+# only, and readers refuse any other attribute or string type before touching its data.
+MAX_ATTR_BYTES = 1 << 20
+
+
+def fixed_text(text: str) -> np.ndarray:
+    """A scalar fixed-length UTF-8 value for an HDF5 attribute or dataset."""
+    import h5py
+
+    raw = str(text).encode("utf-8")
+    return np.array(raw, dtype=h5py.string_dtype("utf-8", max(len(raw), 1)))
+
+
+def fixed_text_array(texts: object) -> np.ndarray:
+    """An array of fixed-length UTF-8 strings (same shape as ``texts``)."""
+    import h5py
+
+    arr = np.asarray(texts, dtype=object)
+    raw = [str(t).encode("utf-8") for t in arr.reshape(-1)]
+    width = max([len(r) for r in raw] + [1])
+    return np.array(raw, dtype=h5py.string_dtype("utf-8", width)).reshape(arr.shape)
+
+
+def safe_attr(obj: object, name: str, path: object) -> object:
+    """Read attribute ``name`` of an h5py object after checking its type and size.
+
+    Raises DataError for variable-length or other unsupported types (see the note above).
+    """
+    aid = obj.attrs.get_id(name)  # type: ignore[attr-defined]
+    if aid.dtype.kind not in "iufbcS" or (aid.shape != (0,) and aid.get_storage_size() > MAX_ATTR_BYTES):
+        raise DataError(f"{path}: attribute '{name}' has an unsupported type {aid.dtype} or size; "
+                        "is this a robusttomo file?")
+    return obj.attrs[name]  # type: ignore[attr-defined]
+
+
+def check_fixed_strings(dataset: object, name: str, path: object) -> None:
+    """Refuse a string dataset that is not fixed-length UTF-8/ASCII (before reading it)."""
+    import h5py
+
+    info = h5py.check_string_dtype(dataset.dtype)  # type: ignore[attr-defined]
+    if info is None or info.length is None:
+        raise DataError(f"{path}: dataset '{name}' must hold fixed-length strings; got dtype "
+                        f"{dataset.dtype}")  # type: ignore[attr-defined]

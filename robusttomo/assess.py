@@ -76,12 +76,19 @@ class DiamondSpan:
     high_is_bound : bool
     method : str
         Plain-words description of how ``high`` was obtained.
+    attained_max : float
+        Largest value attained by a channel found in the region (a lower estimate of the
+        maximum; ``nan`` if not computed).
+    certified_max : float
+        Certified upper bound on the maximum (``nan`` if not computed).
     """
 
     low: float
     high: float
     high_is_bound: bool
     method: str
+    attained_max: float = float("nan")
+    certified_max: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -200,6 +207,9 @@ class Reconstruction:
     options : Mapping[str, object]
         The analysis options (bootstrap, seed, control_variate, probes).
     package_version : str
+    unital_block_error : float
+        Bootstrap-predicted Frobenius error of the unital block: the root mean square over
+        replicates of ``||B_b - B||_F`` (``nan`` without bootstrap).
     """
 
     n_qubits: int
@@ -224,8 +234,429 @@ class Reconstruction:
     counts_fingerprint: str
     options: Mapping[str, object]
     package_version: str
+    unital_block_error: float = float("nan")
 
     @property
     def noisy_gate(self) -> Channel:
         """The noisy operation ``error_channel o target``."""
         return self.error_channel @ Channel.from_unitary(self.target_unitary)
+
+
+# ---- the analysis ---------------------------------------------------------------------------
+import dataclasses as _dc  # noqa: E402
+import warnings as _warnings  # noqa: E402
+
+import h5py  # noqa: E402
+
+from robusttomo import _h5tree, _io, _pauli  # noqa: E402
+from robusttomo._version import __version__  # noqa: E402
+from robusttomo.errors import DataError  # noqa: E402
+from robusttomo.estimate import BlockKind, Correlations, LengthStats, ProbeSet, compute_correlations  # noqa: E402
+from robusttomo.fit import LinearObservations, fit_decays  # noqa: E402
+
+RESULT_SCHEMA = 1
+
+
+def _interval(value: float, replicates: np.ndarray | None) -> Interval:
+    """Bias-corrected percentile bootstrap interval (95%).
+
+    With ``z0 = Phi^-1(fraction of replicates below the estimate)``, the ends are the
+    ``Phi(2 z0 -+ 1.96)`` quantiles of the replicates ("Nonparametric standard errors and
+    confidence intervals", Canadian Journal of Statistics 9, 139 (1981)).  The correction
+    matters for figures that noise biases, such as the diamond distance (noise in the unital
+    block moves the estimate away from the identity); ``z0 = 0`` gives the plain percentile
+    interval.
+    """
+    import scipy.stats
+
+    if replicates is None or len(replicates) == 0 or not np.isfinite(value):
+        return Interval(float(value), float("nan"), float("nan"))
+    v = np.asarray(replicates, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size < 2:
+        return Interval(float(value), float("nan"), float("nan"))
+    frac = (np.sum(v < value) + 0.5 * np.sum(v == value)) / v.size
+    frac = float(np.clip(frac, 1.0 / (v.size + 1), v.size / (v.size + 1)))
+    z0 = scipy.stats.norm.ppf(frac)
+    z = scipy.stats.norm.ppf(0.975)
+    lo, hi = np.quantile(v, scipy.stats.norm.cdf([2 * z0 - z, 2 * z0 + z]))
+    return Interval(float(value), float(lo), float(hi))
+
+
+def _subset(corr: Correlations, parity: int) -> Correlations:
+    """Every other sequence (by position within each length): a split for held-out checks."""
+    stats = []
+    for s in corr.stats:
+        pick = np.arange(parity, s.values.shape[0], 2)
+        stats.append(LengthStats(s.length, s.probes, s.values[pick], s.ideal[pick], s.mu, s.shots[pick]))
+    m2 = [None if a is None else a[parity::2] for a in (corr.m2_u, corr.m2_v, corr.m2_u_ideal)]
+    return _dc.replace(corr, stats=tuple(stats), m2_u=m2[0], m2_v=m2[1], m2_u_ideal=m2[2])
+
+
+def _channel_figures(ch: Channel, *, diamond: bool = True) -> dict[str, object]:
+    """Every figure of merit of an error channel against the identity."""
+    from robusttomo import metrics
+    from robusttomo.generators import rates_from_channel
+
+    out: dict[str, object] = {
+        "agf": metrics.average_gate_fidelity(ch),
+        "ef": metrics.entanglement_fidelity(ch),
+        "unitarity": metrics.unitarity(ch),
+        "pauli": metrics.pauli_error_rates(ch),
+    }
+    try:
+        gen = rates_from_channel(ch)
+        out["ham"], out["sto"] = gen.hamiltonian, gen.stochastic
+        out["coh"] = metrics.coherent_share(ch)
+    except ValueError:  # no real logarithm: far from the identity
+        labels = _pauli.pauli_labels(ch.n_qubits)[1:]
+        out["ham"] = {k: float("nan") for k in labels}
+        out["sto"] = {k: float("nan") for k in labels}
+        out["coh"] = float("nan")
+    out["dd"] = metrics.diamond_distance_details(ch).value if diamond else float("nan")
+    return out
+
+
+def _classic_interleaved(ref, inter, n: int) -> ClassicInterleaved:
+    """Classic interleaved estimate with the bounds of PRL 109, 080505 (2012)."""
+    d = 2**n
+    p_ref, p_int = ref.identity_decay, inter.identity_decay
+    r = (d - 1) * (1 - p_int / p_ref) / d
+    e1 = (d - 1) * (abs(p_ref - p_int / p_ref) + (1 - p_ref)) / d
+    e2 = (2 * (d * d - 1) * (1 - p_ref) / (p_ref * d * d)
+          + 4 * np.sqrt(max(1 - p_ref, 0.0)) * np.sqrt(d * d - 1) / p_ref)
+    e = min(e1, e2)
+    return ClassicInterleaved(float(r), float(r - e), float(r + e), float(p_ref), float(p_int))
+
+
+def _transformed_gate_observations(comp: LinearObservations, ref: Channel, gate: np.ndarray,
+                                   values: np.ndarray) -> np.ndarray:
+    """Unital block of ``L_G`` implied by composite values and a reference channel.
+
+    ``B_int = B(L_G) K`` with ``K = B(G L G^dagger)`` (unital blocks compose exactly), so
+    ``B(L_G) = B_int K^{-1}`` with ``B_int`` from the (pseudo-)inverse of the probe design.
+    """
+    d2 = comp.design.shape[1]
+    dd = int(round(np.sqrt(d2)))
+    rg = _pauli.ptm_of_unitary(gate)
+    k = (rg @ ref.ptm @ rg.T)[1:, 1:]
+    b_int = (np.linalg.pinv(comp.design) @ values).reshape(dd, dd)
+    return (b_int @ np.linalg.pinv(k)).reshape(-1)
+
+
+def analyze(plan: object, counts: object, *, target: object = None, reference: tuple | None = None,
+            bootstrap: int = 200, seed: int | None = None, probes: ProbeSet | None = None,
+            control_variate: bool = True, models: bool = True, ranges: bool = True,
+            diamond: bool = True, jobs: int = 1,
+            solver: str = "SCS", progress: object = None) -> Reconstruction:
+    """Reconstruct the error channel and its figures of merit with 95% intervals.
+
+    Reference mode (a plan without an interleaved gate): the error channel ``L`` after every
+    Clifford.  Interleaved mode (a plan with an interleaved gate): ``L`` from the reference
+    sequences (held in the same plan, or given as ``reference=(plan, counts)``), the composite
+    ``L_int`` from the interleaved ones, and the gate's own error ``L_G`` by a convex fit with
+    ``L`` fixed; figures compare the noisy gate ``L_G o G`` with ``G``.
+
+    Intervals: percentile bootstrap over sequences (resampled within each length, every
+    replicate re-fits the control variate, the decays and the CPTP channel; in interleaved mode
+    reference and interleaved runs are resampled together so the uncertainty of ``L``
+    propagates into ``L_G``).
+
+    Parameters
+    ----------
+    plan : robusttomo.plan.Plan
+    counts : robusttomo.counts.Counts
+        Must carry the plan's fingerprint.
+    target : None or ndarray (d, d)
+        Target unitary of the figures; default identity (reference mode) or the plan's
+        interleaved gate.
+    reference : tuple (Plan, Counts), optional
+        A separate reference run for an interleaved plan without reference sequences.
+    bootstrap : int, default 200
+        Bootstrap replicates (0: no intervals).
+    seed : int, optional
+        Seed of the bootstrap.
+    probes : ProbeSet, optional
+        Default: :func:`robusttomo.estimate.default_probes`.
+    control_variate : bool, default True
+    models : bool, default True
+        Fit and compare the reduced models.
+    ranges : bool, default True
+        Compute the non-unital and diamond-distance ranges (semidefinite programs).
+    diamond : bool, default True
+        Compute the diamond distance (one semidefinite program per bootstrap replicate);
+        ``False`` reports it as NaN, for fast studies of the other figures.
+    jobs : int, default 1
+        Worker processes for the decay bootstrap.
+    solver : {"SCS", "CLARABEL"}
+        First convex solver (the other is the fallback).
+    progress : callable, optional
+        ``progress(stage: str, done: int, total: int)`` for progress display.
+
+    Returns
+    -------
+    Reconstruction
+
+    Examples
+    --------
+    >>> import robusttomo as rt
+    >>> from robusttomo.channels import depolarizing
+    >>> plan = rt.make_plan(n_qubits=1, lengths=[1, 2, 4], sequences=60, shots=200, seed=1)
+    >>> dev = rt.Device.build(1, error=depolarizing(1, 0.98), readout=[(0.02, 0.03)])
+    >>> rec = rt.analyze(plan, rt.simulate(plan, dev, seed=2), bootstrap=20, seed=3)
+    >>> bool(rec.figures.average_gate_fidelity.value > 0.97)
+    True
+    """
+    from robusttomo import metrics
+    from robusttomo import models as mdl
+    from robusttomo import reconstruct as rc
+    from robusttomo.plan import SequenceKind
+
+    def tick(stage: str, done: int, total: int) -> None:
+        if progress is not None:
+            progress(stage, done, total)  # type: ignore[operator]
+
+    if isinstance(bootstrap, bool) or not isinstance(bootstrap, (int, np.integer)) or bootstrap < 0:
+        raise ValueError(f"'bootstrap' must be a non-negative integer; got {bootstrap!r}")
+    fp = getattr(counts, "plan_fingerprint", None)
+    if fp != getattr(plan, "fingerprint", None):
+        raise DataError(f"counts ({getattr(counts, 'source', '?')}): field 'plan_fingerprint' {fp!r} does not match "
+                        "the plan's fingerprint; analyze the counts with the plan they were taken for")
+    n = plan.n_qubits  # type: ignore[attr-defined]
+    d = 2**n
+    interleaved = plan.interleave is not None and any(  # type: ignore[attr-defined]
+        b.kind is SequenceKind.INTERLEAVED for b in plan.blocks)  # type: ignore[attr-defined]
+    warn: list[str] = []
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        tick("correlations", 0, 1)
+        if interleaved:
+            ref_plan, ref_counts = (plan, counts) if reference is None else reference
+            corr_ref = compute_correlations(ref_plan, ref_counts, probes=probes, kind=BlockKind.REFERENCE)
+            corr_int = compute_correlations(plan, counts, probes=corr_ref.probes, kind=BlockKind.INTERLEAVED)
+            gate = np.asarray(plan.interleave.unitary)  # type: ignore[attr-defined]
+            label = str(plan.interleave.label)  # type: ignore[attr-defined]
+        else:
+            corr_ref = compute_correlations(plan, counts, probes=probes, kind=BlockKind.REFERENCE)
+            corr_int = None
+            gate = np.eye(d, dtype=complex)
+            label = "identity"
+        if target is not None:
+            gate = _validated_unitary(target, d)
+            label = "user target"
+        tick("correlations", 1, 1)
+        tick("decay fit", 0, 1)
+        dec_ref = fit_decays(corr_ref, control_variate=control_variate, bootstrap=bootstrap, seed=seed, jobs=jobs)
+        dec_int = (None if corr_int is None else
+                   fit_decays(corr_int, control_variate=control_variate, bootstrap=bootstrap, seed=seed, jobs=jobs))
+        tick("decay fit", 1, 1)
+        warn += [f"reference run: {w}" if interleaved else w for w in dec_ref.warnings]
+        if dec_int is not None:
+            warn += [f"interleaved run: {w}" for w in dec_int.warnings]
+
+        obs_ref = dec_ref.observations()
+        tick("convex fit", 0, 1)
+        fitter = rc.CptpFitter(obs_ref, solver=solver)
+        fit_ref = fitter.fit()
+        l_ref = fit_ref.channel
+        if interleaved:
+            obs_int = dec_int.observations()  # type: ignore[union-attr]
+            fit_main = rc.isolate_gate_error(obs_int, l_ref, plan.interleave.unitary, solver=solver)  # type: ignore[attr-defined]
+            obs_main = rc.gate_error_observations(obs_int, l_ref, plan.interleave.unitary)  # type: ignore[attr-defined]
+            main_fitter = rc.CptpFitter(obs_main, solver=solver)
+        else:
+            fit_main, obs_main, main_fitter = fit_ref, obs_ref, fitter
+        err = fit_main.channel
+        tick("convex fit", 1, 1)
+        if fit_main.status is not rc.FitStatus.CERTIFIED:
+            warn.append(f"the convex solver did not certify its solution ({fit_main.message}); "
+                        "treat the channel as approximate")
+        if fit_main.fell_back:
+            warn.append(f"the first convex solver failed and {fit_main.solver} was used instead")
+
+        # ranges of what the data cannot fix
+        d2m1 = d * d - 1
+        if ranges:
+            tick("ranges", 0, 2)
+            nu = main_fitter.nonunital_range(fit_main)
+            tick("ranges", 1, 2)
+            nu_arr = np.column_stack([nu.minimum, nu.maximum])
+            if diamond:
+                dr = main_fitter.diamond_range(fit_main, nonunital=nu)
+                span = DiamondSpan(float(dr.minimum), float(dr.maximum), bool(dr.max_is_bound), dr.method,
+                                   float(dr.maximum_attained), float(dr.maximum_certified))
+            else:
+                span = DiamondSpan(float("nan"), float("nan"), True, "not computed (diamond=False)")
+            tick("ranges", 2, 2)
+        else:
+            nu_arr = np.full((d2m1, 2), np.nan)
+            span = DiamondSpan(float("nan"), float("nan"), True, "not computed (ranges=False)")
+
+        # point figures and bootstrap replicates
+        point = _channel_figures(err, diamond=diamond)
+        reps: list[dict[str, object]] = []
+        if bootstrap > 0:
+            ref_vals = dec_ref.bootstrap_lambdas
+            fits_b = fitter.fit_replicates(ref_vals)
+            if interleaved:
+                int_vals = dec_int.bootstrap_lambdas  # type: ignore[union-attr]
+                implied = np.array([_transformed_gate_observations(obs_int, fb.channel, plan.interleave.unitary, v)
+                                    for fb, v in zip(fits_b, int_vals)])
+                direct = LinearObservations(n, np.eye(d2m1 * d2m1), implied.mean(axis=0),
+                                            np.cov(implied, rowvar=False) if len(implied) > 1 else
+                                            np.eye(d2m1 * d2m1), tuple(f"B[{i}]" for i in range(d2m1 * d2m1)))
+                g_fitter = rc.CptpFitter(direct, solver=solver)
+                fits_b = g_fitter.fit_replicates(implied)
+            for i, fb in enumerate(fits_b):
+                reps.append(_channel_figures(fb.channel, diamond=diamond))
+                reps[-1]["block"] = fb.channel.unital_block
+                tick("bootstrap", i + 1, len(fits_b))
+
+        def rep(key: str) -> np.ndarray | None:
+            return None if not reps else np.array([r[key] for r in reps], dtype=float)
+
+        def rep_map(key: str, lab: str) -> np.ndarray | None:
+            return None if not reps else np.array([r[key][lab] for r in reps], dtype=float)  # type: ignore[index]
+
+        dec_main = dec_int if interleaved else dec_ref
+        p_rep = None if dec_main.bootstrap_lambdas is None else dec_main.bootstrap_lambdas[:, dec_main._ident()]
+        dfid = 1 - (d - 1) * (1 - np.asarray(p_rep)) / d if p_rep is not None else None
+        figures = Figures(
+            average_gate_fidelity=_interval(point["agf"], rep("agf")),  # type: ignore[arg-type]
+            entanglement_fidelity=_interval(point["ef"], rep("ef")),  # type: ignore[arg-type]
+            diamond_distance=_interval(point["dd"], rep("dd")),  # type: ignore[arg-type]
+            diamond_distance_range=span,
+            unitarity=_interval(point["unitarity"], rep("unitarity")),  # type: ignore[arg-type]
+            coherent_share=_interval(point["coh"], rep("coh")),  # type: ignore[arg-type]
+            decay_fidelity=_interval(dec_main.average_gate_fidelity, dfid),
+            pauli_error_rates={k: _interval(v, rep_map("pauli", k)) for k, v in point["pauli"].items()},  # type: ignore[union-attr]
+            hamiltonian={k: _interval(v, rep_map("ham", k)) for k, v in point["ham"].items()},  # type: ignore[union-attr]
+            stochastic={k: _interval(v, rep_map("sto", k)) for k, v in point["sto"].items()},  # type: ignore[union-attr]
+        )
+
+        # reduced models and the choice between them
+        summaries: list[ModelSummary] = []
+        chosen = "full"
+        if models:
+            tick("models", 0, 1)
+            summaries, chosen, mwarn = _model_summaries(
+                mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_variate, interleaved, plan, solver)
+            warn += mwarn
+            tick("models", 1, 1)
+
+    classic = _classic_interleaved(dec_ref, dec_int, n) if dec_int is not None else None
+    block_err = (float(np.sqrt(np.mean([np.sum((r["block"] - err.unital_block) ** 2) for r in reps])))
+                 if reps else float("nan"))
+    opts = {"bootstrap": int(bootstrap), "seed": -1 if seed is None else int(seed),
+            "control_variate": bool(control_variate), "probes": f"{dec_ref.probes.n_probes} probes",
+            "solver": str(solver)}
+    return Reconstruction(
+        n_qubits=n, mode=AnalysisMode.INTERLEAVED if interleaved else AnalysisMode.REFERENCE,
+        target_label=label, target_unitary=np.asarray(gate, dtype=complex), error_channel=err,
+        figures=figures, models=tuple(summaries), chosen_model=chosen, decays=dec_ref,
+        interleaved_decays=dec_int, linear_unital_block=np.asarray(fit_main.linear_block),
+        constraint_distance=float(fit_main.linear_distance), nonunital_ranges=nu_arr,
+        solver=str(fit_main.solver), solver_status=str(fit_main.status.value),
+        solver_fell_back=bool(fit_main.fell_back), classic_interleaved=classic, warnings=tuple(warn),
+        plan_fingerprint=str(plan.fingerprint), counts_fingerprint=str(counts.fingerprint),  # type: ignore[attr-defined]
+        options=opts, package_version=__version__, unital_block_error=block_err,
+    )
+
+
+def _validated_unitary(target: object, d: int) -> np.ndarray:
+    if isinstance(target, Channel):
+        raise TypeError("'target' must be a unitary matrix for analyze(); got a Channel")
+    u = np.asarray(target, dtype=complex)
+    if u.shape != (d, d) or not np.allclose(u.conj().T @ u, np.eye(d), atol=1e-8):
+        raise ValueError(f"'target' must be a {d} x {d} unitary matrix; got shape {u.shape}")
+    return u
+
+
+def _model_summaries(mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_variate, interleaved, plan, solver):
+    """Fit every model on the full data; choose by held-out prediction on a split of sequences."""
+    from robusttomo import metrics
+
+    d2 = 4**obs_main.n_qubits
+    warn: list[str] = []
+
+    def fit_all(obs: LinearObservations, full_fit) -> list:
+        out = [mdl.ModelFit.from_channel("full", full_fit.channel, (d2 - 1) ** 2, obs)]
+        for f in (mdl.fit_generator_model, mdl.fit_pauli_model, mdl.fit_coherent_model):
+            try:
+                out.append(f(obs))
+            except (ValueError, RuntimeError, np.linalg.LinAlgError) as exc:
+                warn.append(f"model fit {f.__name__} failed: {exc}")
+        return out
+
+    def split_obs(parity: int) -> LinearObservations:
+        dref = fit_decays(_subset(corr_ref, parity), control_variate=control_variate, bootstrap=0)
+        if not interleaved:
+            return dref.observations()
+        lref = rc.fit_cptp(dref.observations(), solver=solver).channel
+        dint = fit_decays(_subset(corr_int, parity), control_variate=control_variate, bootstrap=0)
+        return rc.gate_error_observations(dint.observations(), lref, plan.interleave.unitary)
+
+    full = fit_all(obs_main, fit_main)
+    comp_full = mdl.compare_models(full)
+    heldout_chi2: dict[str, float] = {}
+    chosen = comp_full.chosen
+    try:
+        train, test = split_obs(0), split_obs(1)
+        train_fits = fit_all(train, rc.fit_cptp(train, solver=solver))
+        comp = mdl.compare_models(train_fits, heldout=test)
+        heldout_chi2 = {s.name: float(s.heldout_chi2) for s in comp.scores if s.heldout_chi2 is not None}
+        chosen = comp.chosen
+    except (ValueError, RuntimeError, np.linalg.LinAlgError) as exc:
+        warn.append(f"held-out model check skipped: {exc}")
+    out = []
+    for f in full:
+        sc = comp_full.score(f.name)
+        out.append(ModelSummary(
+            name=f.name, n_parameters=int(f.n_parameters), chi2=float(f.chi2), criterion=float(sc.aic),
+            heldout_chi2=heldout_chi2.get(f.name, float("nan")),
+            average_gate_fidelity=float(metrics.average_gate_fidelity(f.channel)),
+            diamond_distance=float(metrics.diamond_distance(f.channel)),
+            parameters={k: float(v) for k, v in f.parameters.items()}, ptm=np.array(f.channel.ptm)))
+    return out, chosen, warn
+
+
+# ---- files ------------------------------------------------------------------------------------
+def save_reconstruction(rec: Reconstruction, path: object, *, force: bool = False) -> None:
+    """Write a :class:`Reconstruction` to HDF5 (atomically; no overwrite unless ``force``).
+
+    Layout: root attributes ``schema_version`` (1), ``kind`` = ``"robusttomo-result"``,
+    ``plan_fingerprint``, ``counts_fingerprint``, ``package_version``; one group per field of
+    :class:`Reconstruction` (see docs/file-formats.md).
+    """
+    with _io.atomic_path(path, force=force) as tmp:  # type: ignore[arg-type]
+        with h5py.File(tmp, "w") as f:
+            f.attrs["schema_version"] = RESULT_SCHEMA
+            f.attrs["kind"] = _io.fixed_text("robusttomo-result")
+            grp = f.create_group("reconstruction")
+            _h5tree.write(grp, rec)
+            for key in ("plan_fingerprint", "counts_fingerprint", "package_version"):
+                f.attrs[key] = _io.fixed_text(getattr(rec, key))
+
+
+def load_reconstruction(path: object) -> Reconstruction:
+    """Read a result file written by :func:`save_reconstruction`; DataError on a bad file."""
+    from pathlib import Path
+
+    p = Path(path)  # type: ignore[arg-type]
+    if not p.is_file():
+        raise DataError(f"{p}: result file not found")
+    try:
+        f = h5py.File(p, "r")
+    except OSError:
+        raise DataError(f"{p}: not an HDF5 file; expected a result written by 'robusttomo analyze'") from None
+    with f:
+        version = _io.safe_attr(f, "schema_version", p) if "schema_version" in f.attrs else None
+        _io.check_schema(p, version, kind="result", supported=(RESULT_SCHEMA,))
+        kind = _io.safe_attr(f, "kind", p) if "kind" in f.attrs else None
+        if (kind.decode() if isinstance(kind, bytes) else kind) != "robusttomo-result":
+            raise DataError(f"{p}: field 'kind' is {kind!r}, not 'robusttomo-result'; is this a result file?")
+        grp = f.get("reconstruction")
+        if not isinstance(grp, h5py.Group):
+            raise DataError(f"{p}: group 'reconstruction' is missing")
+        rec = _h5tree.read(grp, Reconstruction, path=p)
+    return rec  # type: ignore[return-value]

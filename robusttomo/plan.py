@@ -901,31 +901,30 @@ def save_plan(plan: Plan, path: str | os.PathLike[str], *, force: bool = False) 
     with _io.atomic_path(path, force=force) as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["schema_version"] = np.int64(1)
-            f.attrs["kind"] = _KIND
-            f.attrs["fingerprint"] = plan.fingerprint
+            f.attrs["kind"] = _io.fixed_text(_KIND)
+            f.attrs["fingerprint"] = _io.fixed_text(plan.fingerprint)
             f.attrs["n_qubits"] = np.int64(n)
             f.attrs["shots"] = np.int64(plan.shots)
             f.attrs["seed"] = np.int64(plan.seed)
             f.attrs["n_blocks"] = np.int64(len(plan.blocks))
-            f.attrs["package_version"] = __version__
-            f.attrs["convention"] = CONVENTION
+            f.attrs["package_version"] = _io.fixed_text(__version__)
+            f.attrs["convention"] = _io.fixed_text(CONVENTION)
             root = f.create_group("blocks")
-            str_dt = h5py.string_dtype(encoding="utf-8")
             for i, b in enumerate(plan.blocks):
                 g = root.create_group(f"{i:03d}")
-                g.attrs["kind"] = b.kind.value
+                g.attrs["kind"] = _io.fixed_text(b.kind.value)
                 g.attrs["length"] = np.int64(b.length)
                 g.attrs["first_id"] = np.int64(b.first_id)
                 g.create_dataset("cliffords", data=b.cliffords, dtype="<i8")
                 g.create_dataset("sequence_ids", data=b.sequence_ids, dtype="<i8")
                 uniq, inv = np.unique(b.cliffords, return_inverse=True)
                 table = np.array(_circuit_table(n, uniq), dtype=object)
-                g.create_dataset("circuits", data=table[inv.reshape(b.cliffords.shape)], dtype=str_dt)
+                g.create_dataset("circuits", data=_io.fixed_text_array(table[inv.reshape(b.cliffords.shape)]))
             gate = plan.interleave
             if gate is not None:
                 ig = f.create_group("interleave")
-                ig.attrs["label"] = gate.label
-                ig.attrs["name"] = gate.name or ""
+                ig.attrs["label"] = _io.fixed_text(gate.label)
+                ig.attrs["name"] = _io.fixed_text(gate.name or "")
                 ig.attrs["qubits"] = np.array(gate.qubits or (), dtype=np.int64)
                 ig.create_dataset("unitary", data=gate.unitary, dtype="<c16")
     return Path(path)
@@ -974,7 +973,7 @@ def load_plan(path: str | os.PathLike[str]) -> Plan:
 def _attr(obj: h5py.HLObject, name: str, where: str, path: Path) -> object:
     if name not in obj.attrs:
         raise DataError(f"{path}: attribute '{name}' of {where} is missing; is this a robusttomo plan file?")
-    return obj.attrs[name]
+    return _io.safe_attr(obj, name, path)
 
 
 def _attr_int(obj: h5py.HLObject, name: str, where: str, path: Path) -> int:
@@ -1007,8 +1006,7 @@ def _dataset(group: h5py.Group, name: str, where: str, path: Path, *, kinds: str
     if not isinstance(obj, h5py.Dataset):
         raise DataError(f"{path}: dataset '{name}' of {where} is missing (or not a dataset)")
     if kinds == "str":
-        if h5py.check_string_dtype(obj.dtype) is None:
-            raise DataError(f"{path}: dataset '{name}' of {where} must hold strings; got dtype {obj.dtype}")
+        _io.check_fixed_strings(obj, f"{where}/{name}", path)
     elif obj.dtype.kind not in kinds:
         raise DataError(f"{path}: dataset '{name}' of {where} has dtype {obj.dtype}; expected "
                         f"{'integers' if kinds == 'iu' else 'complex numbers'}")
@@ -1021,7 +1019,7 @@ def _read_plan(f: h5py.File, p: Path) -> Plan:
     kind = _attr_str(f, "kind", "the root", p)
     if kind != _KIND:
         raise DataError(f"{p}: attribute 'kind' is {kind!r:.60}, not {_KIND!r}; this is not a plan file")
-    _io.check_schema(p, f.attrs.get("schema_version"), kind="plan", supported=_SCHEMAS)
+    _io.check_schema(p, _io.safe_attr(f, "schema_version", p) if "schema_version" in f.attrs else None, kind="plan", supported=_SCHEMAS)
     stored_fp = _attr_str(f, "fingerprint", "the root", p)
     convention = _attr_str(f, "convention", "the root", p)
     if convention != CONVENTION:

@@ -9,6 +9,8 @@ import tempfile
 from pathlib import Path
 
 import h5py
+
+from robusttomo import _io
 import numpy as np
 import openqasm3
 import pytest
@@ -400,8 +402,9 @@ def test_save_load_round_trip(tmp_path: Path, index: int) -> None:
         assert np.array_equal(back.sequence_unitaries(bi), plan.sequence_unitaries(bi))
     assert [p.name for p in tmp_path.iterdir()] == ["p.h5"]  # no temporary file left behind
     with h5py.File(out) as f:  # the documented schema
-        assert f.attrs["schema_version"] == 1 and f.attrs["kind"] == "robusttomo-plan"
-        assert f.attrs["fingerprint"] == plan.fingerprint and f.attrs["convention"] == P.CONVENTION
+        assert f.attrs["schema_version"] == 1 and f.attrs["kind"] == b"robusttomo-plan"  # fixed-length UTF-8
+        assert f.attrs["fingerprint"].decode() == plan.fingerprint
+        assert f.attrs["convention"].decode() == P.CONVENTION
         b0 = f["blocks/000"]
         circ = b0["circuits"].asstr()[()]
         for (k, j), idx in np.ndenumerate(b0["cliffords"][()]):
@@ -445,14 +448,16 @@ def _replace(h: h5py.File, name: str, value: object) -> None:
 @pytest.mark.parametrize("edit, match", [
     (lambda h: h.attrs.__delitem__("schema_version"), "'schema_version' of the plan file is missing"),
     (lambda h: h.attrs.__setitem__("schema_version", 2), "schema_version 2"),
-    (lambda h: h.attrs.__setitem__("kind", "robusttomo-counts"), "attribute 'kind' is 'robusttomo-counts'"),
+    (lambda h: h.attrs.__setitem__("kind", _io.fixed_text("robusttomo-counts")), "attribute 'kind' is 'robusttomo-counts'"),
+    # variable-length text is refused before it is read (a corrupt heap can hang the HDF5 library)
+    (lambda h: h.attrs.__setitem__("kind", "robusttomo-plan"), "attribute 'kind' has an unsupported type"),
     (lambda h: h.attrs.__delitem__("kind"), "attribute 'kind' of the root is missing"),
     (lambda h: h.attrs.__delitem__("fingerprint"), "attribute 'fingerprint' of the root is missing"),
     (lambda h: h.attrs.__setitem__("shots", 101), "attribute 'fingerprint' .* content hashes to"),
     (lambda h: h.attrs.__setitem__("shots", 1.5), "attribute 'shots' of the root must be an integer"),
     (lambda h: h.attrs.__setitem__("shots", 0), "'shots' must be an integer in 1"),
     (lambda h: h.attrs.__setitem__("n_qubits", 5), "'n_qubits' must be 1, 2 or 3; got 5"),
-    (lambda h: h.attrs.__setitem__("convention", "other"), "attribute 'convention' differs"),
+    (lambda h: h.attrs.__setitem__("convention", _io.fixed_text("other")), "attribute 'convention' differs"),
     (lambda h: h.attrs.__setitem__("n_blocks", 9), "group 'blocks/006' is missing"),
     (lambda h: h.__delitem__("blocks/001/cliffords"), "dataset 'cliffords' of block '001' is missing"),
     (lambda h: h.__delitem__("blocks/001/sequence_ids"), "dataset 'sequence_ids' of block '001' is missing"),
@@ -465,10 +470,10 @@ def _replace(h: h5py.File, name: str, value: object) -> None:
     (lambda h: _replace(h, "blocks/001/sequence_ids", np.array([3, 5])), "'sequence_ids' of block '001' row 1 is 5"),
     (lambda h: _replace(h, "blocks/001/circuits", np.array([[b"x q[9]"] * 2] * 2)), "row 0 column 0: not a circuit of h"),
     (lambda h: _replace(h, "blocks/001/circuits", np.array([[b"h q[0]"] * 2] * 2)), "two different circuits|does not run"),
-    (lambda h: _replace(h, "blocks/001/circuits", np.zeros((2, 2))), "must hold strings"),
-    (lambda h: h["blocks/000"].attrs.__setitem__("kind", "sideways"), "'kind' of block '000' must be"),
+    (lambda h: _replace(h, "blocks/001/circuits", np.zeros((2, 2))), "must hold fixed-length strings"),
+    (lambda h: h["blocks/000"].attrs.__setitem__("kind", _io.fixed_text("sideways")), "'kind' of block '000' must be"),
     (lambda h: h["blocks/000"].attrs.__setitem__("length", 2), r"shape \(3, 1\); expected \(3, 2\)"),
-    (lambda h: h["interleave"].attrs.__setitem__("name", "cx"), "does not match the standard gate 'cx'"),
+    (lambda h: h["interleave"].attrs.__setitem__("name", _io.fixed_text("cx")), "does not match the standard gate 'cx'"),
     (lambda h: h["interleave"].attrs.__setitem__("qubits", np.array([0.5])), "'qubits' of group 'interleave'"),
     (lambda h: _replace(h, "interleave/unitary", np.eye(4)), "has dtype float64; expected complex"),
 ])
@@ -490,7 +495,7 @@ def test_load_checks_circuits_against_indices(tmp_path: Path, plan_file: tuple[P
             c = h["blocks/000/circuits"].asstr()[()]
             c[0, 0] = text
             del h["blocks/000/circuits"]
-            h.create_dataset("blocks/000/circuits", data=c, dtype=h5py.string_dtype())
+            h.create_dataset("blocks/000/circuits", data=_io.fixed_text_array(c))
         return edit
 
     f = _mutated(tmp_path, plan_file[1], set_circuit(wrong))
