@@ -25,9 +25,11 @@ from robusttomo.clifford import Clifford, clifford_group_order, random_clifford 
 from robusttomo.counts import Counts, ingest, load_counts, save_counts  # noqa: E402
 from robusttomo.errors import DataError  # noqa: E402
 from robusttomo.estimate import default_probes  # noqa: E402
+from robusttomo.export import export_channel, load_channel  # noqa: E402
 from robusttomo.fit import DecayResult, LinearObservations, estimate_decays  # noqa: E402
 from robusttomo.metrics import average_gate_fidelity, diamond_distance, entanglement_fidelity, unitarity  # noqa: E402
 from robusttomo.plan import Plan, export_qasm, load_plan, make_plan, save_plan  # noqa: E402
+from robusttomo.report import write_report  # noqa: E402
 from robusttomo.simulate import Device, load_device, save_device, simulate  # noqa: E402
 
 __all__ = sorted([
@@ -48,8 +50,10 @@ __all__ = sorted([
     "diamond_distance",
     "entanglement_fidelity",
     "estimate_decays",
+    "export_channel",
     "export_qasm",
     "ingest",
+    "load_channel",
     "load_counts",
     "load_device",
     "load_plan",
@@ -62,4 +66,5 @@ __all__ = sorted([
     "save_reconstruction",
     "simulate",
     "unitarity",
+    "write_report",
 ])

@@ -39,6 +39,9 @@ def atomic_path(path: str | os.PathLike[str], *, force: bool = False) -> Iterato
         yield tmp_path
         if target.exists() and not force:  # appeared meanwhile: keep it
             raise FileExistsError(f"{target}: output appeared while writing; pass --force to overwrite")
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp's 0600 would survive the rename
         os.replace(tmp_path, target)
     finally:
         if tmp_path.exists():

@@ -210,6 +210,13 @@ class Reconstruction:
     unital_block_error : float
         Bootstrap-predicted Frobenius error of the unital block: the root mean square over
         replicates of ``||B_b - B||_F`` (``nan`` without bootstrap).
+    reference_channel : Channel or None
+        Interleaved mode: the reference error ``L`` the gate error was isolated with.
+    anchor_weight : float
+        Weight of the fidelity re-anchoring mixture (positive: towards the identity, negative:
+        towards the depolarizing channel) that made the estimate's identity-probe decay equal
+        the measured one; see ``_anchor``.  A large value means the CPTP constraints fought
+        the data.
     """
 
     n_qubits: int
@@ -235,6 +242,8 @@ class Reconstruction:
     options: Mapping[str, object]
     package_version: str
     unital_block_error: float = float("nan")
+    anchor_weight: float = 0.0
+    reference_channel: Channel | None = None
 
     @property
     def noisy_gate(self) -> Channel:
@@ -329,19 +338,56 @@ def _classic_interleaved(ref, inter, n: int) -> ClassicInterleaved:
     return ClassicInterleaved(float(r), float(r - e), float(r + e), float(p_ref), float(p_int))
 
 
-def _transformed_gate_observations(comp: LinearObservations, ref: Channel, gate: np.ndarray,
-                                   values: np.ndarray) -> np.ndarray:
-    """Unital block of ``L_G`` implied by composite values and a reference channel.
+def _anchor(ch: Channel, functional: np.ndarray, target: float) -> tuple[Channel, float]:
+    """Re-anchor the fidelity direction of a CPTP estimate to a precisely measured decay.
 
-    ``B_int = B(L_G) K`` with ``K = B(G L G^dagger)`` (unital blocks compose exactly), so
-    ``B(L_G) = B_int K^{-1}`` with ``B_int`` from the (pseudo-)inverse of the probe design.
+    The CPTP constraints bias a noisy fit towards lower fidelity (lifting negative Choi
+    eigenvalues takes weight from the dominant one), while the identity-probe decay, pinned by
+    the long sequences, is unbiased and far more precise.  The estimate is therefore mixed with
+    the identity channel (to raise ``functional . vec(B)``) or with the completely depolarizing
+    channel (to lower it) so that ``functional . vec(B) = target``:
+
+        L' = (1 - a) L + a A,   A = identity or depolarizing,   0 <= a <= 1.
+
+    A convex combination of CPTP maps is CPTP, and mixing with the identity shrinks the whole
+    error towards zero, which also counters the upward bias noise gives to error measures.
+    Returns the mixed channel and the signed weight (positive: towards the identity).
+    """
+    d2 = ch.ptm.shape[0]
+    f_now = float(functional @ ch.unital_block.reshape(-1))
+    f_id = float(functional @ np.eye(d2 - 1).reshape(-1))
+    if target > f_now and f_id > f_now:
+        a = min((target - f_now) / (f_id - f_now), 1.0)
+        anchor = np.eye(d2)
+    elif target < f_now and f_now > 0:
+        a = min((f_now - target) / f_now, 1.0)  # the depolarizing block is 0
+        anchor = np.zeros((d2, d2))
+        anchor[0, 0] = 1.0
+        a = -a
+    else:
+        return ch, 0.0
+    w = abs(a)
+    return Channel.from_ptm((1 - w) * ch.ptm + w * anchor), float(a)
+
+
+def _gate_frame_values(comp: LinearObservations, ref_b: Channel, ref: Channel, gate: np.ndarray,
+                       values: np.ndarray) -> np.ndarray:
+    """Move a replicate's composite values into the point estimate's frame.
+
+    The gate-error fit with reference ``L`` has design ``A (I kron K^T)`` on ``vec(B_G)``,
+    ``K = B(G L G^dagger)`` (unital blocks compose exactly).  A replicate comes with its own
+    reference ``L_b``; its implied composite ``B_int = unvec(A^+ y_b)`` gives
+    ``B_G = B_int K_b^{-1}``, whose values under the point design are
+    ``A vec(B_int K_b^{-1} K)``.  For a full probe basis (square, invertible ``A``) fitting these
+    with the point problem is exactly the replicate's own fit, without rebuilding the problem.
     """
     d2 = comp.design.shape[1]
     dd = int(round(np.sqrt(d2)))
     rg = _pauli.ptm_of_unitary(gate)
+    k_b = (rg @ ref_b.ptm @ rg.T)[1:, 1:]
     k = (rg @ ref.ptm @ rg.T)[1:, 1:]
     b_int = (np.linalg.pinv(comp.design) @ values).reshape(dd, dd)
-    return (b_int @ np.linalg.pinv(k)).reshape(-1)
+    return comp.design @ (b_int @ np.linalg.solve(k_b.T, k.T).T).reshape(-1)
 
 
 def analyze(plan: object, counts: object, *, target: object = None, reference: tuple | None = None,
@@ -466,7 +512,18 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
             main_fitter = rc.CptpFitter(obs_main, solver=solver)
         else:
             fit_main, obs_main, main_fitter = fit_ref, obs_ref, fitter
-        err = fit_main.channel
+        ident = dec_ref._ident()
+        d2m1 = d * d - 1
+
+        def functional(ref_channel: Channel) -> np.ndarray:
+            if not interleaved:
+                return np.eye(d2m1).reshape(-1) / d2m1
+            rg = _pauli.ptm_of_unitary(plan.interleave.unitary)  # type: ignore[attr-defined]
+            k = (rg @ ref_channel.ptm @ rg.T)[1:, 1:]
+            return k.T.reshape(-1) / d2m1  # lambda_int(identity) = tr(B_G K) / (d*d - 1)
+
+        dec_main = dec_int if interleaved else dec_ref
+        err, anchor_weight = _anchor(fit_main.channel, functional(l_ref), float(dec_main.lambdas[ident]))
         tick("convex fit", 1, 1)
         if fit_main.status is not rc.FitStatus.CERTIFIED:
             warn.append(f"the convex solver did not certify its solution ({fit_main.message}); "
@@ -475,7 +532,6 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
             warn.append(f"the first convex solver failed and {fit_main.solver} was used instead")
 
         # ranges of what the data cannot fix
-        d2m1 = d * d - 1
         if ranges:
             tick("ranges", 0, 2)
             nu = main_fitter.nonunital_range(fit_main)
@@ -497,19 +553,19 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
         reps: list[dict[str, object]] = []
         if bootstrap > 0:
             ref_vals = dec_ref.bootstrap_lambdas
-            fits_b = fitter.fit_replicates(ref_vals)
+            # the reference replicates' non-unital part is needed only when they are the answer
+            ref_b = fitter.fit_replicates(ref_vals, nonunital_rule=not interleaved)
+            fits_b = ref_b
             if interleaved:
                 int_vals = dec_int.bootstrap_lambdas  # type: ignore[union-attr]
-                implied = np.array([_transformed_gate_observations(obs_int, fb.channel, plan.interleave.unitary, v)
-                                    for fb, v in zip(fits_b, int_vals)])
-                direct = LinearObservations(n, np.eye(d2m1 * d2m1), implied.mean(axis=0),
-                                            np.cov(implied, rowvar=False) if len(implied) > 1 else
-                                            np.eye(d2m1 * d2m1), tuple(f"B[{i}]" for i in range(d2m1 * d2m1)))
-                g_fitter = rc.CptpFitter(direct, solver=solver)
-                fits_b = g_fitter.fit_replicates(implied)
+                moved = np.array([_gate_frame_values(obs_int, fb.channel, l_ref, plan.interleave.unitary, v)
+                                  for fb, v in zip(ref_b, int_vals)])
+                fits_b = main_fitter.fit_replicates(moved)
             for i, fb in enumerate(fits_b):
-                reps.append(_channel_figures(fb.channel, diamond=diamond))
-                reps[-1]["block"] = fb.channel.unital_block
+                target_b = float(dec_main.bootstrap_lambdas[i, ident])  # type: ignore[index]
+                ch_b, _ = _anchor(fb.channel, functional(ref_b[i].channel), target_b)
+                reps.append(_channel_figures(ch_b, diamond=diamond))
+                reps[-1]["block"] = ch_b.unital_block
                 tick("bootstrap", i + 1, len(fits_b))
 
         def rep(key: str) -> np.ndarray | None:
@@ -518,7 +574,6 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
         def rep_map(key: str, lab: str) -> np.ndarray | None:
             return None if not reps else np.array([r[key][lab] for r in reps], dtype=float)  # type: ignore[index]
 
-        dec_main = dec_int if interleaved else dec_ref
         p_rep = None if dec_main.bootstrap_lambdas is None else dec_main.bootstrap_lambdas[:, dec_main._ident()]
         dfid = 1 - (d - 1) * (1 - np.asarray(p_rep)) / d if p_rep is not None else None
         figures = Figures(
@@ -560,6 +615,7 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
         solver_fell_back=bool(fit_main.fell_back), classic_interleaved=classic, warnings=tuple(warn),
         plan_fingerprint=str(plan.fingerprint), counts_fingerprint=str(counts.fingerprint),  # type: ignore[attr-defined]
         options=opts, package_version=__version__, unital_block_error=block_err,
+        anchor_weight=anchor_weight, reference_channel=l_ref if interleaved else None,
     )
 
 
