@@ -29,6 +29,7 @@ from robusttomo.export import export_channel, load_channel  # noqa: E402
 from robusttomo.fit import DecayResult, LinearObservations, estimate_decays  # noqa: E402
 from robusttomo.metrics import average_gate_fidelity, diamond_distance, entanglement_fidelity, unitarity  # noqa: E402
 from robusttomo.plan import Plan, export_qasm, load_plan, make_plan, save_plan  # noqa: E402
+from robusttomo.planner import assumed_device, choose_plan, predict  # noqa: E402
 from robusttomo.report import write_report  # noqa: E402
 from robusttomo.simulate import Device, load_device, save_device, simulate  # noqa: E402
 
@@ -44,7 +45,9 @@ __all__ = sorted([
     "Reconstruction",
     "__version__",
     "analyze",
+    "assumed_device",
     "average_gate_fidelity",
+    "choose_plan",
     "clifford_group_order",
     "default_probes",
     "diamond_distance",
@@ -59,6 +62,7 @@ __all__ = sorted([
     "load_plan",
     "load_reconstruction",
     "make_plan",
+    "predict",
     "random_clifford",
     "save_counts",
     "save_device",

@@ -30,7 +30,10 @@ The per-length covariances then go through the decay fit's own sandwich formula
 observation covariance of the linear observations the rest of the product consumes, so the
 unital block's covariance is that of the weighted least-squares (linear) estimate, and every
 reduced model's parameter covariance is its Gauss-Newton covariance (the package's own model
-fits run on the noise-free predicted observations).  In interleaved mode the isolated gate's
+fits run on the noise-free predicted observations).  A run weights its model fits by a
+covariance it estimates from its own length-2 sequences; the noise of that estimate raises the
+variance of a ``k``-parameter fit of ``p`` observations by ``(nu - 1) / (nu - p + k - 1)``
+(``nu`` = length-2 sequences - 1), which is included.  In interleaved mode the isolated gate's
 error ``L_G`` is observed through ``B_int = B_G K`` with ``K`` from the reference run, and the
 reference run's uncertainty is carried into ``L_G`` to first order.
 
@@ -49,6 +52,7 @@ import json
 import math
 import os
 import shutil
+import types
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -101,7 +105,7 @@ _MODEL_ORDER = (_models.FULL, _models.COHERENT_STOCHASTIC, _models.PAULI, _model
 #: Every figure a prediction holds (and a target may name), with its meaning.  Interleaved-only
 #: figures are marked; in interleaved mode ``average_gate_fidelity``, ``unital_block`` and the
 #: models refer to the isolated gate's error ``L_G`` (as :func:`robusttomo.analyze` reports them).
-FIGURE_NAMES: Mapping[str, str] = {
+FIGURE_NAMES: Mapping[str, str] = types.MappingProxyType({
     "decay_fidelity": "average gate fidelity of L from the identity-probe decay (reference run)",
     "average_gate_fidelity": "average gate fidelity of the reconstructed channel (linear estimate)",
     "lambdas": "largest standard error over the probe decays lambda_A (reference run)",
@@ -112,12 +116,13 @@ FIGURE_NAMES: Mapping[str, str] = {
     _models.COHERENT_STOCHASTIC: "largest parameter standard error, coherent+stochastic model",
     _models.PAULI: "largest parameter standard error, Pauli-channel model",
     _models.COHERENT: "largest parameter standard error, coherent (unitary) model",
-}
+})
 _INTERLEAVED_ONLY = ("interleaved_lambdas", "classic_interleaved_error")
 
-# Default pilot: enough sequences per length that the between-sequence and shot parts of the
-# variance are estimated to a few percent even in directions of the 225-dimensional two-qubit
-# statistic (measured: 500 pilot sequences left 10-40 % errors in some directions, 2000 a few %).
+# Default pilot: ten sequences per probe at the short lengths.  Measured for two qubits: with 500
+# pilot sequences the per-sequence variance along single directions of the 225-dimensional
+# length-2 statistic was off by up to 40 %, with 4000 by up to 20 %; the reported figures, which
+# sum over many directions, moved by 2 to 4 % between pilot seeds at the default size.
 _PILOT_MIN = 1000
 _PILOT_PER_PROBE = 10
 _PILOT_LONG_MIN = 400
@@ -1018,7 +1023,6 @@ def predict(plan: Plan, device: Device, *, seed: int = 0, pilot_sequences: int |
 def _prediction(pil: _Pilots, ref_lay: Mapping[int, int], int_lay: Mapping[int, int], shots: int,
                 fingerprint: str, seconds: float) -> Prediction:
     n = pil.n
-    dim = 4**n - 1
     stages = {}
     for cv in (True, False):
         cov_ref = _lambda_covariance(pil.ref, ref_lay, shots, cv)
@@ -1062,8 +1066,8 @@ def _prediction(pil: _Pilots, ref_lay: Mapping[int, int], int_lay: Mapping[int, 
         for cv, label in ((True, ""), (False, " without the control variate")):
             near = np.flatnonzero(np.abs(run.lambdas) + 2.0 * ses[cv] > 1.0)
             if near.size:
-                names = ", ".join(repr(pil.probes.labels[i]) for i in near[:3]) + (", ..." if near.size > 3 else "")
-                warn.append(f"{run.kind.value} run{label}: the decay of probe(s) {names} lies within two standard "
+                which = ", ".join(repr(pil.probes.labels[i]) for i in near[:3]) + (", ..." if near.size > 3 else "")
+                warn.append(f"{run.kind.value} run{label}: the decay of probe(s) {which} lies within two standard "
                             "errors of 1, where the fit clips it; its spread (and the fidelity's) will be smaller "
                             "than predicted")
     blocks = tuple([("reference", m, int(k)) for m, k in sorted(ref_lay.items())]
@@ -1093,7 +1097,14 @@ def _model_prediction(name: str, stages: Mapping[bool, _Stage], pil: _Pilots, wa
     se = {}
     for cv in (True, False):
         st = stages[cv]
-        fit = _MODEL_FITS[name](st.obs_main)
+        try:
+            fit = _MODEL_FITS[name](st.obs_main)
+        except (ValueError, RuntimeError, np.linalg.LinAlgError) as exc:
+            warn.append(f"model {name!r} could not be fitted to the predicted observations ({exc}); no prediction")
+            labels = (tuple(f"p:{q}" for q in _pauli.pauli_labels(n)[1:]) if name == _models.PAULI
+                      else _models._generator_parts(n, name == _models.COHERENT_STOCHASTIC)[1])
+            nan = np.full(len(labels), np.nan)
+            return ModelPrediction(name, labels, nan, nan, nan.copy(), float("nan"), np.zeros(nan.size, dtype=bool))
         theta = np.array(list(fit.parameters.values()))
         jac = np.asarray(st.obs_main.design) @ _model_jacobian(name, n, theta)
         factor = _weight_noise_factor(st.nu, st.p_eff, theta.size)
@@ -1686,7 +1697,7 @@ def _search(fast: _Fast, ladder: Sequence[int], goals: Mapping[str, float], t_sh
 
     starts = [np.array([0.0, math.log(0.25), min(max(math.log(100.0), lo_n), hi_n)]),
               np.array([0.0, math.log(1.0), min(max(math.log(1000.0), lo_n), hi_n)])]
-    bounds = [(math.log(1 / 64), math.log(8.0)), (math.log(1 / 64), math.log(8.0)), (lo_n, hi_n)]
+    bounds = [(math.log(1 / 1024), math.log(16.0)), (math.log(1 / 1024), math.log(16.0)), (lo_n, hi_n)]
     costs = {}
     for top in [m for m in ladder if m >= 2]:
         lengths = tuple(m for m in ladder if m <= top)
@@ -1873,7 +1884,13 @@ def _explain(pil: _Pilots, best: _Choice, best0: _Choice, binding: str, goals_se
             "and the scatter, from run to run, of the error a run reports")
     others = [k for k in goals_se if k != binding]
     if others:
-        text += "; " + ", ".join(f"'{k}' comes out at {pred.stderr(k):.3g} against {goals_se[k]:.3g}" for k in others)
+        lead = pred.stderr(binding) / goals_se[binding]
+
+        def note(k: str) -> str:
+            tied = pred.stderr(k) / goals_se[k] >= 0.99 * lead
+            return f"'{k}' comes out at {pred.stderr(k):.3g} against {goals_se[k]:.3g}{' (binding too)' if tied else ''}"
+
+        text += "; " + ", ".join(note(k) for k in others)
     text += ". "
     if binding in ("decay_fidelity", "lambdas", "interleaved_lambdas", "classic_interleaved_error"):
         v = next(x for x in pred.variances if x.quantity == "identity probe" and x.length == 2)
