@@ -262,14 +262,41 @@ def _cmd_plan(args: argparse.Namespace) -> int:
         prog = _progress(args)
         with prog.step("writing OpenQASM 3 programs"):
             qasm = export_qasm(plan, args.qasm, bundle=args.qasm_bundle, force=args.force)
+    prediction = None
+    if args.predict:
+        from robusttomo.planner import assumed_device, format_prediction, predict
+        from robusttomo.simulate import load_device
+
+        if args.assume_device is not None:
+            with _reading(f"device file {args.assume_device}"):
+                device = load_device(args.assume_device)
+            if device.n_qubits != plan.n_qubits:
+                raise _InputError(f"{args.assume_device}: field 'n_qubits' is {device.n_qubits} but the plan has "
+                                  f"{plan.n_qubits} qubit(s)")
+        else:
+            with _reading("--assume-error/--assume-spam"):
+                device = assumed_device(plan.n_qubits, average_error=args.assume_error,
+                                        readout_error=args.assume_spam)
+        with _reading("prediction options"):
+            costs = {"seconds_per_shot": args.seconds_per_shot, "seconds_per_sequence": args.seconds_per_sequence}
+            prog = _progress(args)
+            with prog.step("predicting the precision of the plan"):
+                prediction = predict(plan, device, seed=args.seed, costs=costs)
     save_plan(plan, args.output, force=args.force)
+    if prediction is not None:
+        from robusttomo.planner import attach_prediction, format_prediction
+
+        attach_prediction(args.output, prediction, force=True)  # the plan file was just written by us
+        if not args.json:
+            print(format_prediction(prediction))
     facts = _plan_facts(plan)
     kinds = ", ".join(f"{b['kind']} m={b['length']}: {b['sequences']}" for b in facts["blocks"])
     _say(args, f"wrote {args.output}: {plan.n_qubits} qubit(s), {plan.n_sequences} sequences ({kinds}), "
                f"{plan.shots} shots each, fingerprint {plan.fingerprint[:12]}...")
     if qasm:
         _say(args, f"wrote {len(qasm)} OpenQASM 3 file(s) to {args.qasm}")
-    _emit_json(args, {"plan": str(args.output), **facts, "qasm": [str(p) for p in qasm]})
+    extra = {} if prediction is None else {"prediction": prediction.as_dict()}
+    _emit_json(args, {"plan": str(args.output), **facts, "qasm": [str(p) for p in qasm], **extra})
     return EXIT_OK
 
 
@@ -503,6 +530,18 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--qasm", metavar="DIR", help="also write the OpenQASM 3 programs into DIR")
     sp.add_argument("--qasm-bundle", action="store_true", help="one bundle file plus an index instead of one file "
                                                                "per sequence")
+    sp.add_argument("--predict", action="store_true",
+                    help="predict the precision this plan delivers (stored in the plan file, printed as a table)")
+    sp.add_argument("--assume-device", metavar="DEVICE.json",
+                    help="device description the prediction assumes (default: --assume-error and --assume-spam)")
+    sp.add_argument("--assume-error", type=float, default=0.01,
+                    help="assumed average gate error for --predict without a device file (default 0.01)")
+    sp.add_argument("--assume-spam", type=float, default=0.02,
+                    help="assumed readout error per qubit for --predict without a device file (default 0.02)")
+    sp.add_argument("--seconds-per-shot", type=float, default=1e-4,
+                    help="device seconds per shot, for the device-time estimate (default 1e-4)")
+    sp.add_argument("--seconds-per-sequence", type=float, default=0.05,
+                    help="device seconds to load a new sequence, for the device-time estimate (default 0.05)")
     _common(sp)
     sp.set_defaults(func=_cmd_plan)
 

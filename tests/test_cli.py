@@ -392,3 +392,18 @@ def test_demo_end_to_end_on_small_data(capsys, tmp_path, monkeypatch):
     code, text, _ = run(capsys, "demo", "-o", str(out), "--quiet", "--json", "--force")
     doc = json.loads(text)
     assert code == 0 and doc["report"] == str(out / "report.html") and doc["truth"]["average_gate_fidelity"] == 0.998
+
+
+def test_plan_predict_stores_and_prints_the_prediction(capsys, tmp_path):
+    from robusttomo.planner import load_prediction
+
+    out = tmp_path / "p.h5"
+    code, stdout, _ = run(capsys, "plan", "--qubits", "1", "--lengths", "1,2,4", "--sequences", "60",
+                          "--shots", "50", "--seed", "2", "-o", str(out), "--predict", "--quiet")
+    assert code == 0 and "Predicted precision" in stdout and "decay_fidelity" in stdout
+    assert load_plan(out).n_sequences == 180
+    pred = load_prediction(out)
+    assert pred.as_dict()["figures"]  # the stored table is readable back
+    code, _, err = run(capsys, "plan", "--qubits", "1", "--lengths", "1,2", "--sequences", "10", "--seed", "2",
+                       "-o", str(tmp_path / "q.h5"), "--predict", "--assume-error", "-0.5", "--quiet")
+    assert code == 2 and "average_error" in one_error_line(err)
