@@ -211,14 +211,14 @@ def test_two_qubit_statistical_recovery_and_spam_invariance():
         counts = _simulate_plan(plan, err, prep, _product_confusion([(ro, ro)] * 2), rng, 100)
         res = estimate_decays(plan, counts, probes=probes, bootstrap=0)
         z = (res.lambdas - lam_true) / res.lambda_stderr
-        assert np.max(np.abs(z)) < 4.5, np.max(np.abs(z))  # 225 probes: 4 sigma bound + Bonferroni slack
+        assert np.max(np.abs(z)) < 4.0, np.max(np.abs(z))  # 225 probes: P(max > 4) ~ 1.4% by chance
         assert res.average_gate_fidelity == pytest.approx(
             1 - 3 * (1 - (np.trace(err.ptm) - 1) / 15) / 4, abs=4 * res.average_gate_fidelity_stderr)
         results.append(res)
     a, b = results
     assert abs(a.spam_constant - b.spam_constant) > 10 * (a.spam_constant_stderr + b.spam_constant_stderr)
     diff = (a.lambdas - b.lambdas) / np.sqrt(a.lambda_stderr**2 + b.lambda_stderr**2)
-    assert np.max(np.abs(diff)) < 4.5
+    assert np.max(np.abs(diff)) < 4.0
 
 
 @pytest.mark.slow
@@ -324,3 +324,25 @@ def test_interleaved_probes_measure_composite():
     f2 = corr.stats_for(2).values.mean(axis=0)
     np.testing.assert_allclose(f2 / f1, lam_true, atol=1e-10)
     assert f1 > 0.5  # the final ideal G keeps c healthy
+
+
+@pytest.mark.slow
+def test_two_qubit_standard_errors_match_spread_over_repeats():
+    """Two qubits: reported standard errors within 30% of the spread over 30 repeats (common practice)."""
+    rng = np.random.default_rng(99)
+    err = rotation("ZZ", 0.06) @ depolarizing(2, 0.985)
+    probes = default_probes(2)
+    prep = np.diag([0.98, 0.01, 0.01, 0.0]).astype(complex)
+    conf = _product_confusion([(0.03, 0.03)] * 2)
+    est, se = [], []
+    for _ in range(30):
+        plan = _random_plan(2, [1, 2, 4, 8], 250, rng)
+        counts = _simulate_plan(plan, err, prep, conf, rng, 100)
+        res = estimate_decays(plan, counts, probes=probes, bootstrap=0)
+        est.append(res.lambdas)
+        se.append(res.lambda_stderr)
+    ratio = np.mean(se, axis=0) / np.std(est, axis=0, ddof=1)
+    # with 30 repeats the spread itself is uncertain by ~13%: judge the typical probe and the bulk
+    assert 0.85 < np.median(ratio) < 1.15, np.median(ratio)
+    assert np.mean(np.abs(ratio - 1) < 0.3) >= 0.9, np.sort(ratio)[[0, -1]]
+    assert 0.7 < ratio[0] < 1.3  # the identity probe
