@@ -75,7 +75,7 @@ def _write_value(group: h5py.Group, name: str, value: object, tp: object) -> Non
     elif isinstance(value, tuple):
         args = typing.get_args(tp)
         etp = args[0] if args else object
-        if all(isinstance(v, str) for v in value):
+        if etp is str:  # by the declared element type: an empty tuple must round-trip too
             group.create_dataset(name, data=_io.fixed_text_array(list(value)), shape=(len(value),))
         else:
             sub = group.create_group(name)

@@ -485,6 +485,8 @@ _EXAMPLES = {
     "report": "robusttomo report result.h5 -o report/",
     "export": "robusttomo export result.h5 --format kraus-json -o cz-error.json",
     "demo": "robusttomo demo -o demo-report",
+    "batch": "robusttomo batch device.json -o device-run/ --jobs 4",
+    "compare": "robusttomo compare old-run/ new-run/ -o changes/",
 }
 
 
@@ -610,7 +612,73 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--jobs", type=int, default=1, help="worker processes for the bootstrap (default 1)")
     _common(sp)
     sp.set_defaults(func=_cmd_demo)
+    _add_batch_commands(add)
     return p
+
+
+# ---- batch and compare (robusttomo.batch, robusttomo.compare) --------------------------------
+def _cmd_batch(args: argparse.Namespace) -> int:
+    from robusttomo.batch import JobStatus, load_manifest, run_batch
+
+    if args.jobs < 1:
+        raise _InputError(f"--jobs: must be a positive integer; got {args.jobs}")
+    with _reading(f"manifest {args.manifest}"):
+        manifest = load_manifest(args.manifest)
+    prog = _progress(args)
+    try:
+        res = run_batch(manifest, args.output, jobs=args.jobs, cluster=args.cluster, force=args.force,
+                        progress=prog.callback)
+    finally:
+        prog.close()
+    counts = {s: sum(o.status is s for o in res.outcomes) for s in JobStatus}
+    _say(args, f"batch of {len(res.outcomes)} job(s): {counts[JobStatus.DONE]} analysed, "
+               f"{counts[JobStatus.SKIPPED]} skipped (result up to date), {counts[JobStatus.FAILED]} failed "
+               f"in {res.elapsed:.1f} s\nsummary: {res.csv}, {res.html}, {res.figure}")
+    for o in res.outcomes:
+        if o.status is JobStatus.FAILED:
+            sys.stderr.write(f"{_PROG} batch: job {o.label} failed: {o.error}\n")
+    _emit_json(args, {"summary_csv": str(res.csv), "summary_json": str(res.json), "summary_html": str(res.html),
+                      "figure": str(res.figure), "elapsed_seconds": res.elapsed,
+                      "jobs": [{"label": o.label, "status": o.status.value, "error": o.error,
+                                "result": None if o.result is None else str(o.result)} for o in res.outcomes]})
+    return EXIT_INPUT if counts[JobStatus.FAILED] else EXIT_OK
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from robusttomo.compare import compare, write_comparison
+
+    with _reading(f"inputs {args.old} and {args.new}"):
+        comp = compare(args.old, args.new)
+    pj, ph = write_comparison(comp, args.output, force=args.force)
+    lines = [f"{'gate':<16} {'fidelity change [95%]':<36} {'channel distance':>16}  flag"]
+    for g in comp.gates:
+        f = g.fidelity
+        lines.append(f"{g.label:<16} {f'{f.delta:+.5f} [{f.low:+.5f}, {f.high:+.5f}]':<36} "
+                     f"{g.channel_distance:>16.5f}  {'CHANGED' if g.flagged else ''}")
+    _say(args, "\n".join(lines) + f"\nwrote {pj} and {ph}")
+    _emit_json(args, comp.as_dict())
+    return EXIT_OK
+
+
+def _add_batch_commands(add: Any) -> None:
+    sp = add("batch", "analyse every gate of a batch manifest (resumable) and write the device summary")
+    sp.add_argument("manifest", metavar="MANIFEST.json", help="batch manifest (see docs/batch.md)")
+    sp.add_argument("-o", "--output", required=True, metavar="DIR", help="batch output directory (a rerun into "
+                                                                        "the same directory resumes)")
+    sp.add_argument("--jobs", type=int, default=os.cpu_count() or 1,
+                    help="local worker processes (default: number of CPUs)")
+    sp.add_argument("--cluster", metavar="ADDRESS", help="run the jobs on a running Dask scheduler, e.g. "
+                                                         "tcp://10.0.0.5:8786 (extra 'cluster')")
+    _common(sp)
+    sp.set_defaults(func=_cmd_batch)
+
+    sp = add("compare", "what changed between two results or two batch directories")
+    sp.add_argument("old", metavar="OLD", help="result file or batch directory")
+    sp.add_argument("new", metavar="NEW", help="result file or batch directory")
+    sp.add_argument("-o", "--output", required=True, metavar="DIR", help="directory for compare.json and "
+                                                                        "compare.html")
+    _common(sp)
+    sp.set_defaults(func=_cmd_compare)
 
 
 def _one_line(err: BaseException) -> str:

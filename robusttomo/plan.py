@@ -26,6 +26,7 @@ import math
 import os
 import re
 import types
+import zipfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from enum import Enum
@@ -308,7 +309,8 @@ class InterleavedGate:
         if suffix == ".npy":
             try:
                 raw = np.load(p, allow_pickle=False)
-            except (OSError, ValueError, EOFError, TypeError, KeyError, SyntaxError) as exc:
+            except (OSError, ValueError, EOFError, TypeError, KeyError, SyntaxError, zipfile.BadZipFile) as exc:
+                # np.load also opens zip archives (.npz content), so a corrupt one fails as BadZipFile
                 raise DataError(f"{p}: not a readable .npy array ({exc}); save it with numpy.save") from None
             if not isinstance(raw, np.ndarray) or raw.dtype.kind not in "iufc":
                 raise DataError(f"{p}: field 'unitary' must be a numeric array; got dtype "
