@@ -287,7 +287,8 @@ def summary_table(rec: Any) -> str:
         ("diamond distance", f.diamond_distance),
         ("unitarity", f.unitarity),
         ("coherent share of infidelity", f.coherent_share),
-        ("fidelity from identity decay", f.decay_fidelity),
+        ("fidelity from decays alone" + (" (classic interleaved)" if rec.mode.value == "interleaved"
+                                          else " (identity probe)"), f.decay_fidelity),
     ]
     width = max(len(r[0]) for r in rows)
     lines = [f"{rec.n_qubits}-qubit {what}; bootstrap replicates: {rec.options.get('bootstrap', '?')}",
