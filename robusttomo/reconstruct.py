@@ -42,7 +42,9 @@ from dataclasses import dataclass
 
 import cvxpy as cp
 import numpy as np
+import scipy.linalg
 import scipy.sparse as sp
+import scipy.sparse.linalg
 import scipy.stats
 
 from robusttomo import _pauli
@@ -85,6 +87,8 @@ _REGION_EPS = 1e-8
 _FIXED_NOTE = "; the region is thinner than absolute_accuracy in the unital block, so the block is held at the estimate's"
 # singular values of the scaled whitened design below this (relative) count as unidentified
 _RANK_TOL = 1e-10
+# above this many block parameters (three qubits) the whitened factor is not decomposed by SVD
+_SVD_MAX = 1000
 
 
 class SolverError(RuntimeError):
@@ -188,7 +192,9 @@ class ChannelFit:
     status : FitStatus
         CERTIFIED when the residuals meet the accuracy target.
     solver : str
-        Solver of the returned point, ``"SCS"`` or ``"CLARABEL"``.
+        Solver of the weighted least-squares fit that produced the unital block, ``"SCS"`` or
+        ``"CLARABEL"`` (the non-unital rule's program is solved by Clarabel first; ``message``
+        names its solver).
     fell_back : bool
         True when the first solver's answer was rejected (status, failure or certificate) and the
         fallback solver was used in some stage.
@@ -518,37 +524,99 @@ def _check_unitary(name: str, value: object, d: int) -> np.ndarray:
 
 
 # ---- whitening ---------------------------------------------------------------------------------
-@dataclass(frozen=True)
 class _Whitened:
-    w: np.ndarray  # (k, k) whitening, W^T W = (C + eps I)^-1
-    a: np.ndarray  # (k, p) W @ design
-    q: np.ndarray  # (k, r0) orthonormal
-    rs: np.ndarray  # (r0, p) scaled triangular factor, ||rs||_2 = 1
-    scale: float  # s = ||W design||_2
-    u: np.ndarray  # left singular vectors of rs, (r0, r0)
-    svals: np.ndarray  # singular values of rs
-    vt: np.ndarray  # right singular vectors of rs, (p, p)
-    rank: int
-    sigma_min: float  # smallest singular value of W design (0 if rank < p)
-    ridge: float
+    """Whitened design ``W design = Q R`` and the linear algebra the fit needs on ``rs = R / s``.
+
+    ``W^T W = (C + eps I)^{-1}``.  Small problems (or rank-deficient, or fewer observations than
+    parameters) keep the SVD of ``rs``; a large square full-rank ``rs`` (three qubits) uses
+    triangular solves instead, with ``s`` and ``sigma_min`` from Lanczos iterations: the dense
+    SVD of a 3969 x 3969 factor took 80 s on two cores, the rest of the whitening about 10 s.
+    """
+
+    def __init__(self, design: np.ndarray, cov: np.ndarray, ridge: float, *, svd_max: int | None = None) -> None:
+        k, p = design.shape
+        cov = (cov + cov.T) / 2
+        diag = np.diag(cov)
+        self.ridge = max(ridge * float(np.clip(diag, 0.0, None).sum()) / k, _RIDGE_FLOOR)
+        if not np.any(cov - np.diag(diag)):
+            self.w = np.diag(1.0 / np.sqrt(np.clip(diag, 0.0, None) + self.ridge))
+        else:
+            try:
+                chol = np.linalg.cholesky(cov + self.ridge * np.eye(k))
+                self.w = scipy.linalg.solve_triangular(chol, np.eye(k), lower=True)
+            except np.linalg.LinAlgError:
+                # slightly indefinite beyond the ridge: clip the spectrum instead
+                lam, vec = np.linalg.eigh(cov)
+                self.w = (vec / np.sqrt(np.clip(lam, 0.0, None) + self.ridge)).T
+        self.a = self.w @ design
+        if k == p and not np.any(np.tril(self.a, -1)):
+            # already triangular (unit rows with a diagonal covariance): Q = I
+            self.q, r = np.eye(k), self.a.copy()
+        else:
+            self.q, r = np.linalg.qr(self.a, mode="reduced")
+        self.p = p
+        limit = _SVD_MAX if svd_max is None else svd_max
+        self.triangular = False
+        if r.shape[0] == p and p > limit:
+            scale = float(scipy.sparse.linalg.svds(r, k=1, return_singular_vectors=False)[0])
+            rs = r / scale
+            smin = self._smallest_singular_value(rs)
+            if smin > _RANK_TOL:
+                self.triangular = True
+                self.scale, self.rs, self.rank, self.sigma_min = scale, rs, p, smin * scale
+                return
+        u, svals, vt = np.linalg.svd(r, full_matrices=True)
+        scale = float(svals[0]) if svals.size and svals[0] > 0 else 1.0
+        self.scale = scale
+        self.rs = r / scale
+        self.u, self.svals, self.vt = u, svals / scale, vt
+        self.rank = int(np.sum(self.svals > _RANK_TOL))
+        self.sigma_min = float(self.svals[-1] * scale) if self.rank == p else 0.0
+
+    @staticmethod
+    def _smallest_singular_value(rs: np.ndarray) -> float:
+        """``sigma_min(rs)`` by shift-invert Lanczos on ``rs^T rs`` (two triangular solves per step)."""
+        p = rs.shape[0]
+        if np.min(np.abs(np.diag(rs))) <= _RANK_TOL:
+            return 0.0
+        gram = scipy.sparse.linalg.LinearOperator((p, p), matvec=lambda v: rs.T @ (rs @ v), dtype=float)
+        inv = scipy.sparse.linalg.LinearOperator(
+            (p, p), dtype=float,
+            matvec=lambda v: scipy.linalg.solve_triangular(rs, scipy.linalg.solve_triangular(rs, v, trans="T")))
+        lam = scipy.sparse.linalg.eigsh(gram, k=1, sigma=0.0, OPinv=inv, which="LM", tol=1e-12,
+                                        return_eigenvectors=False)
+        return float(np.sqrt(max(lam[0], 0.0)))
+
+    def solve(self, y: np.ndarray) -> np.ndarray:
+        """Least-squares ``b`` for ``rs b = y`` (minimum norm when ``rs`` is rank deficient)."""
+        if self.triangular:
+            return scipy.linalg.solve_triangular(self.rs, y)
+        r = self.rank
+        return self.vt[:r].T @ ((self.u[:, :r].T @ y) / self.svals[:r])
+
+    def quadratic_minimum(self, y: np.ndarray, c: np.ndarray) -> float:
+        """Lower bound on ``min_b ||rs b - y||^2 - c @ b`` over blocks with ``|b_ij| <= 1``.
+
+        Exact (unconstrained minimum) on the identified subspace; the part of ``c`` outside it
+        contributes ``-||c_perp||_1`` (the box).
+        """
+        if self.triangular:
+            blin = scipy.linalg.solve_triangular(self.rs, y)
+            z = scipy.linalg.solve_triangular(self.rs, c, trans="T")
+            res = y - self.rs @ blin
+            return float(res @ res - c @ blin - (z @ z) / 4)
+        r = self.rank
+        uy = self.u[:, :r].T @ y
+        a = self.vt[:r] @ c
+        c_perp = c - self.vt[:r].T @ a
+        s_r = self.svals[:r]
+        outside = y - self.u[:, :r] @ uy  # part of y no b can reach (direct, no cancellation)
+        quad = float(np.sum(-a * uy / s_r - a**2 / (4 * s_r**2)))
+        return float(outside @ outside) + quad - float(np.abs(c_perp).sum())
 
 
 def _whiten(design: np.ndarray, cov: np.ndarray, ridge: float) -> _Whitened:
-    k, p = design.shape
-    cov = (cov + cov.T) / 2
-    lam, vec = np.linalg.eigh(cov)
-    lam = np.clip(lam, 0.0, None)
-    eps = max(ridge * float(lam.sum()) / k, _RIDGE_FLOOR)
-    w = (vec / np.sqrt(lam + eps)).T
-    a = w @ design
-    q, r = np.linalg.qr(a, mode="reduced")
-    u, svals, vt = np.linalg.svd(r, full_matrices=True)
-    scale = float(svals[0]) if svals.size and svals[0] > 0 else 1.0
-    rs = r / scale
-    svals = svals / scale
-    rank = int(np.sum(svals > _RANK_TOL))
-    sigma_min = float(svals[-1] * scale) if rank == p else 0.0
-    return _Whitened(w, a, q, rs, scale, u, svals, vt, rank, sigma_min, eps)
+    return _Whitened(design, cov, ridge)
 
 
 # ---- solving -----------------------------------------------------------------------------------
@@ -812,11 +880,8 @@ class CptpFitter:
         return float(r @ r)
 
     def _linear(self, values: np.ndarray) -> tuple[np.ndarray, float]:
-        y = self._py @ values
         # minimum-norm solution when the design leaves directions unidentified
-        wh = self._wh
-        r = wh.rank
-        blin = wh.vt[:r].T @ ((wh.u[:, :r].T @ y) / wh.svals[:r])
+        blin = self._wh.solve(self._py @ values)
         return blin, self._chi2(blin, values)
 
     def _dual_lower_bound(self, ydual: np.ndarray, values: np.ndarray) -> float:
@@ -827,21 +892,13 @@ class CptpFitter:
         yv = ypsd.reshape(-1, order="F")
         c = self._zmat.T @ yv
         ct, cb = c[: self._dd], c[self._dd:]
-        y = self._py @ values
-        # f(b) = ||rs b - y||^2 ; rs = U S V^T (full V)
-        r = wh.rank
-        uy = wh.u[:, :r].T @ y
-        a = wh.vt[:r] @ cb
-        c_perp = cb - wh.vt[:r].T @ a
-        s_r = wh.svals[:r]
-        outside = y - wh.u[:, :r] @ uy  # part of y no b can reach (direct, no cancellation)
-        base = float(outside @ outside)
-        quad = float(np.sum(-a * uy / s_r - a**2 / (4 * s_r**2)))
+        # min over b of ||rs b - y||^2 - cb . b, in closed form
+        quad = wh.quadratic_minimum(self._py @ values, cb)
         # t_i = tr(P_i rho) with rho = L(I/d) a density matrix, so c_t . t <= lambda_max(sum c_i P_i);
         # unidentified block directions use |R_ij| <= 1
         c_state = np.einsum("i,iab->ab", ct, _pauli.pauli_stack(self._n)[1:])
         t_term = float(np.linalg.eigvalsh((c_state + c_state.conj().T) / 2)[-1])
-        lb_scaled = -float(yv @ self._z0) + base + quad - float(np.abs(c_perp).sum()) - max(t_term, 0.0)
+        lb_scaled = -float(yv @ self._z0) + quad - max(t_term, 0.0)
         return wh.scale**2 * lb_scaled + self._outside(values)
 
     def _candidate(self, x_raw: np.ndarray, values: np.ndarray, lower: float, solver: str) -> _Candidate:
@@ -925,8 +982,7 @@ class CptpFitter:
             # the block is certified by the first stage's bound; the rule's t is as accurate as
             # the solver (an "almost solved" interior-point answer is kept, and said so)
             if maha <= self._accuracy or frob <= self._abs_accuracy:
-                if not ok or k > 0:
-                    notes.append(f"non-unital rule: {note}")
+                notes.append(f"non-unital rule: {note}")
                 return cand, k > 0, True
             notes.append(f"non-unital rule: {note}; after repair {maha:.2g} standard errors, {frob:.2g} Frobenius")
         # typically the fitted block sits on the boundary of the CPTP set, where it leaves t
@@ -995,7 +1051,7 @@ class CptpFitter:
         return ChannelFit(
             channel=channel,
             status=FitStatus.CERTIFIED if certified else FitStatus.INACCURATE,
-            solver=final.solver,
+            solver=first.solver,
             fell_back=fb1 or fb2,
             message="; ".join(notes),
             chi2=final.chi2,
@@ -1410,8 +1466,7 @@ def linear_estimate(obs: LinearObservations, *, ridge: float = 1e-9) -> np.ndarr
     obs = _check_observations(obs)
     ridge = _check_positive("ridge", ridge, upper=1.0)
     wh = _whiten(np.asarray(obs.design, dtype=float), np.asarray(obs.covariance, dtype=float), ridge)
-    y = wh.q.T @ (wh.w @ np.asarray(obs.values, dtype=float)) / wh.scale
-    b = np.linalg.lstsq(wh.rs, y, rcond=_RANK_TOL)[0]
+    b = wh.solve(wh.q.T @ (wh.w @ np.asarray(obs.values, dtype=float)) / wh.scale)
     dd = 4**obs.n_qubits - 1
     return b.reshape(dd, dd)
 
