@@ -8,14 +8,21 @@ The result, a frozen :class:`Reconstruction`, saves to and loads from HDF5.
 
 from __future__ import annotations
 
+import dataclasses as _dc
 import enum
+import warnings as _warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 
+import h5py
 import numpy as np
 
+from robusttomo import _h5tree, _io, _pauli
+from robusttomo._version import __version__
 from robusttomo.channels import Channel
-from robusttomo.fit import DecayResult
+from robusttomo.errors import DataError
+from robusttomo.estimate import BlockKind, Correlations, LengthStats, ProbeSet, compute_correlations
+from robusttomo.fit import DecayResult, LinearObservations, fit_decays
 
 __all__ = [
     "AnalysisMode",
@@ -254,16 +261,6 @@ class Reconstruction:
 
 
 # ---- the analysis ---------------------------------------------------------------------------
-import dataclasses as _dc  # noqa: E402
-import warnings as _warnings  # noqa: E402
-
-import h5py  # noqa: E402
-
-from robusttomo import _h5tree, _io, _pauli  # noqa: E402
-from robusttomo._version import __version__  # noqa: E402
-from robusttomo.errors import DataError  # noqa: E402
-from robusttomo.estimate import BlockKind, Correlations, LengthStats, ProbeSet, compute_correlations  # noqa: E402
-from robusttomo.fit import LinearObservations, fit_decays  # noqa: E402
 
 RESULT_SCHEMA = 1
 
@@ -455,7 +452,6 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     >>> bool(rec.figures.average_gate_fidelity.value > 0.97)
     True
     """
-    from robusttomo import metrics
     from robusttomo import models as mdl
     from robusttomo import reconstruct as rc
     from robusttomo.plan import SequenceKind

@@ -264,7 +264,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
             qasm = export_qasm(plan, args.qasm, bundle=args.qasm_bundle, force=args.force)
     prediction = None
     if args.predict:
-        from robusttomo.planner import assumed_device, format_prediction, predict
+        from robusttomo.planner import assumed_device, predict
         from robusttomo.simulate import load_device
 
         if args.assume_device is not None:
