@@ -84,6 +84,8 @@ _REGION_MAX_ITERS = 5000
 # in the centred coordinates of the region programs the region is the unit ball, so one fixed
 # tolerance serves every data set
 _REGION_EPS = 1e-8
+#: Candidate extreme points whose diamond distance is evaluated exactly (after screening).
+_SCREEN_CANDIDATES = 6
 _FIXED_NOTE = "; the region is thinner than absolute_accuracy in the unital block, so the block is held at the estimate's"
 # singular values of the scaled whitened design below this (relative) count as unidentified
 _RANK_TOL = 1e-10
@@ -1283,6 +1285,7 @@ class CptpFitter:
         **Maximum**: the maximum of a convex function over a convex set is not an SDP.
         ``maximum_attained`` is the largest value found at channels in the region: the point
         estimate, the minimizer, and the extreme points of the non-unital range programs are
+        screened by the lower bound ``(1/2)||J_L - J_U||_1`` and the most promising are
         evaluated; from the ``ascent_starts`` best, each step takes the optimal primal witness
         ``W`` of the diamond program at the current channel (``dd(x') >= <d (J(x') - J_U), W>``
         for every ``x'``, equality at the current one) and maximizes that linear functional over
@@ -1366,7 +1369,13 @@ class CptpFitter:
             argmin = fit.channel
         # maximum: evaluate candidate extreme points, then ascend from the best
         cands = [fit.channel, argmin, *nonunital.argmin, *nonunital.argmax]
-        scored = sorted(((evaluate(ch), i, ch) for i, ch in enumerate(cands)), key=lambda z: -z[0])
+        # screen by a cheap lower bound, half the trace norm of the Choi difference (the maximally
+        # entangled input is one admissible input), and evaluate the diamond program only for the
+        # most promising candidates: every value kept is still attained by a channel in the region
+        j_target = target_channel.choi
+        proxy = [0.5 * float(np.abs(np.linalg.eigvalsh(ch.choi - j_target)).sum()) for ch in cands]
+        keep = sorted(range(len(cands)), key=lambda i: -proxy[i])[: max(starts + 2, _SCREEN_CANDIDATES)]
+        scored = sorted(((evaluate(cands[i]), i, cands[i]) for i in keep), key=lambda z: -z[0])
         best_val, _, best_ch = scored[0]
         direction, lin_problems = self._region_problem("linear")
         for val0, _, ch0 in scored[:starts]:
