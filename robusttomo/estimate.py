@@ -241,12 +241,16 @@ def default_probes(n_qubits: int, *, overcomplete: bool = False) -> ProbeSet:
     disjoint bases (450 probes) for two qubits.  For three qubits the scan runs over a fixed
     pseudo-random pool of Cliffords.
     """
-    from robusttomo._probe_tables import TABLES
+    from robusttomo._probe_tables import BASES, SECOND_BASES
 
     n = _pauli.check_n_qubits(n_qubits)
-    key = (n, bool(overcomplete))
-    idx = TABLES[key] if key in TABLES else _default_indices(*key)
-    return _cached_probes(n, tuple(idx))
+    if n == 1 and overcomplete:
+        idx: tuple[int, ...] = tuple(range(24))
+    elif n in BASES:
+        idx = tuple(BASES[n]) + (tuple(SECOND_BASES[n]) if overcomplete else ())
+    else:
+        idx = _default_indices(n, bool(overcomplete))
+    return _cached_probes(n, idx)
 
 
 @functools.lru_cache(maxsize=8)

@@ -155,11 +155,14 @@ def test_default_probe_basis_is_full_deterministic_identity_first():
 
 
 def test_shipped_probe_tables_equal_a_fresh_scan():
-    from robusttomo._probe_tables import TABLES
+    from robusttomo._probe_tables import BASES, SECOND_BASES
     from robusttomo.estimate import _default_indices
 
-    for key, idx in TABLES.items():
-        assert tuple(idx) == _default_indices.__wrapped__(*key), key
+    for n, idx in BASES.items():
+        assert tuple(idx) == _default_indices.__wrapped__(n, False), n
+    for n, idx in SECOND_BASES.items():
+        assert tuple(BASES[n]) + tuple(idx) == _default_indices.__wrapped__(n, True), n
+    assert default_probes(1, overcomplete=True).clifford_indices.tolist() == list(range(24))
 
 
 def _simulate_plan(plan, err, prep, confusion, rng, shots):
