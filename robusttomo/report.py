@@ -623,8 +623,9 @@ def _html(rec: Any, figs: Mapping[str, bytes], plan: Any) -> str:
         ("unitarity", _fmt(f.unitarity.value), _fmt_ci(f.unitarity), "1 for a purely coherent error"),
         ("coherent share of the infidelity", _fmt(f.coherent_share.value, 3), _fmt_ci(f.coherent_share, 3),
          "fraction due to the Hamiltonian part of the error generator"),
-        ("fidelity from the identity decay", _fmt(f.decay_fidelity.value), _fmt_ci(f.decay_fidelity),
-         "benchmarking-style number from one decay, for comparison"),
+        ("fidelity from decays alone", _fmt(f.decay_fidelity.value), _fmt_ci(f.decay_fidelity),
+         "classic interleaved estimate from the two identity decays, for comparison"
+         if rec.mode.value == "interleaved" else "benchmarking-style number from the identity decay, for comparison"),
     ]
     ci = rec.classic_interleaved
     if ci is not None:
