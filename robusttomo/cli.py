@@ -485,7 +485,7 @@ _EXAMPLES = {
     "report": "robusttomo report result.h5 -o report/",
     "export": "robusttomo export result.h5 --format kraus-json -o cz-error.json",
     "demo": "robusttomo demo -o demo-report",
-    "batch": "robusttomo batch device.json -o device-run/ --jobs 4",
+    "batch": "robusttomo batch manifest.json -o device-run/ --jobs 4",
     "compare": "robusttomo compare old-run/ new-run/ -o changes/",
 }
 
