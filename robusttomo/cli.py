@@ -455,7 +455,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from robusttomo.report import summary_table
 
     lines = [summary_table(run.reconstruction).rstrip("\n"), "",
-             "invented scenario (not a real device): " + run.scenario, "true values of the invented gate error:"]
+             "scenario: " + run.scenario, "true values of the invented gate error:"]
     for key, value in run.truth.items():
         lines.append(f"  {key.replace('_', ' ')}: {value:.6f}")
     lines += ["", f"report: {run.report.html}", f"finished in {run.elapsed:.1f} s"]
