@@ -24,28 +24,14 @@ from robusttomo.channels import (
     rotation,
 )
 
-_MATS = {
-    "I": np.eye(2, dtype=complex),
-    "X": np.array([[0, 1], [1, 0]], dtype=complex),
-    "Y": np.array([[0, -1j], [1j, 0]], dtype=complex),
-    "Z": np.diag([1.0, -1.0]).astype(complex),
-}
-_HADAMARD = np.array([[1, 1], [1, -1]], dtype=complex) / np.sqrt(2)
+from slow_reference import (  # noqa: E402  obviously-correct references shared by the tests
+    HADAMARD as _HADAMARD,
+    MATS as _MATS,
+    labels as _labels,
+    pauli_slow as _pauli_slow,
+    ptm_of_map_slow as _ptm_of_map_slow,
+)
 _CNOT = np.array([[1, 0, 0, 0], [0, 1, 0, 0], [0, 0, 0, 1], [0, 0, 1, 0]], dtype=complex)  # control qubit 0
-
-
-def _pauli_slow(label: str) -> np.ndarray:
-    out = np.ones((1, 1), dtype=complex)
-    for c in label:
-        out = np.kron(out, _MATS[c])
-    return out
-
-
-def _labels(n: int) -> list[str]:
-    out = [""]
-    for _ in range(n):
-        out = [s + c for s in out for c in "IXYZ"]
-    return out
 
 
 def _kraus_apply(kraus, rho):
@@ -54,14 +40,7 @@ def _kraus_apply(kraus, rho):
 
 def _ptm_slow(kraus, n: int) -> np.ndarray:
     """R[i, j] = tr(P_i L(P_j)) / d by loops (obviously correct reference)."""
-    d = 2**n
-    labels = _labels(n)
-    r = np.zeros((d * d, d * d))
-    for j, lj in enumerate(labels):
-        out = _kraus_apply(kraus, _pauli_slow(lj))
-        for i, li in enumerate(labels):
-            r[i, j] = (np.trace(_pauli_slow(li) @ out) / d).real
-    return r
+    return _ptm_of_map_slow(lambda x: _kraus_apply(kraus, x), n)
 
 
 def _choi_slow(kraus, d: int) -> np.ndarray:

@@ -24,40 +24,11 @@ from robusttomo.generators import (
     stochastic_basis,
 )
 
-_MATS = {
-    "I": np.eye(2, dtype=complex),
-    "X": np.array([[0, 1], [1, 0]], dtype=complex),
-    "Y": np.array([[0, -1j], [1j, 0]], dtype=complex),
-    "Z": np.diag([1.0, -1.0]).astype(complex),
-}
-
-
-def _pauli_slow(label: str) -> np.ndarray:
-    out = np.ones((1, 1), dtype=complex)
-    for c in label:
-        out = np.kron(out, _MATS[c])
-    return out
-
-
-def _labels(n: int) -> list[str]:
-    out = [""]
-    for _ in range(n):
-        out = [s + c for s in out for c in "IXYZ"]
-    return out
-
-
-def _ptm_of_map_slow(fn, n: int) -> np.ndarray:
-    """R[i, j] = tr(P_i fn(P_j)) / d by explicit loops (obviously correct reference)."""
-    labels = _labels(n)
-    d = 2**n
-    r = np.zeros((d * d, d * d))
-    for j, lj in enumerate(labels):
-        out = fn(_pauli_slow(lj))
-        for i, li in enumerate(labels):
-            val = np.trace(_pauli_slow(li) @ out) / d
-            assert abs(val.imag) < 1e-12
-            r[i, j] = val.real
-    return r
+from slow_reference import (  # noqa: E402  obviously-correct references shared by the tests
+    labels as _labels,
+    pauli_slow as _pauli_slow,
+    ptm_of_map_slow as _ptm_of_map_slow,
+)
 
 
 @pytest.mark.parametrize("n", [1, 2])

@@ -38,27 +38,11 @@ from robusttomo.metrics import (
     unitarity,
 )
 
-_MATS = {
-    "I": np.eye(2, dtype=complex),
-    "X": np.array([[0, 1], [1, 0]], dtype=complex),
-    "Y": np.array([[0, -1j], [1j, 0]], dtype=complex),
-    "Z": np.diag([1.0, -1.0]).astype(complex),
-}
-_HADAMARD = np.array([[1, 1], [1, -1]], dtype=complex) / np.sqrt(2)
-
-
-def _pauli_slow(label: str) -> np.ndarray:
-    out = np.ones((1, 1), dtype=complex)
-    for c in label:
-        out = np.kron(out, _MATS[c])
-    return out
-
-
-def _labels(n: int) -> list[str]:
-    out = [""]
-    for _ in range(n):
-        out = [s + c for s in out for c in "IXYZ"]
-    return out
+from slow_reference import (  # noqa: E402  obviously-correct references shared by the tests
+    HADAMARD as _HADAMARD,
+    labels as _labels,
+    pauli_slow as _pauli_slow,
+)
 
 
 @functools.lru_cache(maxsize=None)
