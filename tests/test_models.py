@@ -20,7 +20,7 @@ import scipy.stats
 from robusttomo import _pauli, models
 from robusttomo.channels import Channel, amplitude_damping, embed, rotation
 from robusttomo.fit import LinearObservations
-from robusttomo.generators import channel_from_rates
+from robusttomo.generators import channel_from_rates, generator_matrix
 from robusttomo.models import (
     COHERENT,
     COHERENT_STOCHASTIC,
@@ -578,6 +578,157 @@ def test_comparison_table_shows_every_model_side_by_side():
         assert sc.aic == pytest.approx(f.chi2 + 2 * f.n_parameters)
         assert sc.heldout_n == design.shape[0] and sc.heldout_chi2 is not None
         assert sc.p_value == pytest.approx(scipy.stats.chi2.sf(f.chi2, f.dof))
+
+
+# ---- (e) fidelity intervals and the held-out guard ---------------------------------------------
+@pytest.mark.parametrize("n", [1, 2])
+def test_fidelity_intervals_follow_the_delta_method(n):
+    from robusttomo import metrics
+
+    rng = np.random.default_rng(100 + n)
+    h, s = _random_rates(n, rng, h_scale=0.01, s_range=(2e-3, 5e-3))
+    truth = channel_from_rates(n, hamiltonian=h, stochastic=s)
+    design = _design(n, rng)
+    obs = _observe(truth.unital_block, design, _covariance(design.shape[0], _sigma(n, 1e4), rng), rng)
+    d = 2**n
+    zq = scipy.stats.norm.ppf(0.975)
+    for fit in (fit_generator_model(obs), fit_coherent_model(obs), fit_pauli_model(obs)):
+        fi = fit.fidelity_intervals()
+        assert fi.labels == models.FIGURE_LABELS and fi.method is IntervalMethod.WALD
+        # F_e = tr(R)/d^2 and F_avg = (d F_e + 1)/(d + 1) (Phys. Lett. A 303, 249 (2002))
+        fe = np.trace(fit.channel.ptm) / d**2
+        assert fi.estimate[1] == pytest.approx(fe, abs=1e-14)
+        assert fi.estimate[0] == pytest.approx((d * fe + 1) / (d + 1), abs=1e-14)
+        assert fi.estimate[0] == pytest.approx(metrics.average_gate_fidelity(fit.channel), abs=1e-14)
+        # slow reference for the gradient: central differences of tr(R(theta)) through the
+        # package's channel constructors
+        labels = list(fit.parameters)
+        theta = np.array([fit.parameters[k] for k in labels])
+
+        def trace_of(t):
+            if fit.name == PAULI:
+                probs = {lab[2:]: v for lab, v in zip(labels, t)}
+                kraus = [np.sqrt(max(1 - sum(probs.values()), 0.0)) * np.eye(d)]
+                kraus += [np.sqrt(max(v, 0.0)) * _pauli.pauli_matrix(p) for p, v in probs.items()]
+                return np.trace(Channel.from_kraus(kraus).ptm)
+            hh = {lab[2:]: v for lab, v in zip(labels, t) if lab.startswith("H:")}
+            ss = {lab[2:]: v for lab, v in zip(labels, t) if lab.startswith("S:")}
+            return np.trace(scipy.linalg.expm(generator_matrix(n, hh, ss)))
+
+        step = 1e-6
+        if fit.name == PAULI:  # tr(R) is linear in p: forward differences are exact and stay in bounds
+            grad = np.array([(trace_of(theta + step * e) - trace_of(theta)) / step for e in np.eye(len(theta))])
+        else:
+            grad = np.array([(trace_of(theta + step * e) - trace_of(theta - step * e)) / (2 * step)
+                             for e in np.eye(len(theta))])
+        se_ref = np.sqrt(grad @ fit.parameter_covariance @ grad) / d**2
+        half = (fi.estimate[1] - fi.lower[1]) / zq
+        assert half == pytest.approx(se_ref, rel=1e-4), fit.name
+        assert np.all(fi.upper <= 1.0) and np.all(fi.lower < fi.estimate)
+
+
+def test_fidelity_intervals_cover_and_bootstrap_agrees_one_qubit():
+    rng = np.random.default_rng(110)
+    h, s = _random_rates(1, rng, h_scale=0.02, s_range=(0.01, 0.02))
+    truth = channel_from_rates(1, hamiltonian=h, stochastic=s)
+    f_true = (2 * np.trace(truth.ptm) / 4 + 1) / 3
+    design = _design(1, rng)
+    cov = _covariance(design.shape[0], 2e-3, rng)
+    inside = []
+    for _ in range(150):
+        inside.append(bool(fit_generator_model(_observe(truth.unital_block, design, cov, rng))
+                           .fidelity_intervals().contains({"average_gate_fidelity": f_true})["average_gate_fidelity"]))
+    assert 0.91 <= np.mean(inside) <= 0.99  # binomial sd 0.018 about 0.95
+    obs = _observe(truth.unital_block, design, cov, rng, n_replicates=200)
+    fit = fit_generator_model(obs)
+    boot = intervals_from_replicates(fit, obs, figures=True)
+    wald = fit.fidelity_intervals()
+    assert boot.labels == wald.labels and np.allclose(boot.estimate, wald.estimate)
+    ratio = (boot.upper - boot.lower) / (wald.upper - wald.lower)
+    assert np.all((ratio > 0.75) & (ratio < 1.3)), ratio
+    with pytest.raises(ValueError, match="carries no parameter covariance"):
+        ModelFit.from_channel("full", truth, 9, obs).fidelity_intervals()
+    with pytest.raises(TypeError, match="'figures' must be True or False"):
+        intervals_from_replicates(fit, obs, figures="yes")
+
+
+def test_rates_at_their_bound_are_exactly_zero_so_intervals_contain_zero():
+    # the trust-region solver keeps iterates strictly inside the bounds; a rate at 0 must come
+    # back as 0.0, or the bootstrap interval [1e-30, ...] would exclude a true rate of 0
+    rng = np.random.default_rng(120)
+    truth = channel_from_rates(2, hamiltonian={"ZZ": 0.02}, stochastic={"XI": 0.004})
+    design = _design(2, rng)
+    obs = _observe(truth.unital_block, design, _covariance(design.shape[0], _sigma(2, 1e4), rng), rng, n_replicates=20)
+    fit = fit_generator_model(obs)
+    rates = np.array([v for k, v in fit.parameters.items() if k.startswith("S:")])
+    assert np.all(rates >= 0) and np.sum(rates == 0.0) >= 3
+    assert not np.any((rates > 0) & (rates < 1e-10))
+    boot = intervals_from_replicates(fit, obs)
+    zero_truth = {f"S:{p}": 0.0 for p in _pauli.pauli_labels(2)[1:] if p != "XI"}
+    assert np.mean(list(boot.contains(zero_truth).values())) >= 0.9
+
+
+def _given(name: str, block: np.ndarray, k: int, obs: LinearObservations) -> ModelFit:
+    ptm = np.eye(block.shape[0] + 1)
+    ptm[1:, 1:] = block
+    return ModelFit.from_channel(name, Channel.from_ptm(ptm), k, obs)
+
+
+def test_heldout_choice_never_keeps_a_model_the_fitted_data_reject():
+    # two "models" wrapped as given fits: 'big' (5 parameters) reproduces the truth, 'small'
+    # (3 parameters) misses it by a chi2 of t on the fitted observations.  Held-out data so
+    # noisy that both predict them within the noise: the one-standard-error rule alone would
+    # keep 'small'.  With t = 30 the likelihood-ratio p-value for 2 extra parameters is
+    # exp(-t/2) = 3.1e-7 (chi-square with 2 degrees of freedom is exponential, common
+    # practice), below 1e-3: 'small' is rejected and 'big' chosen.  With t = 6 (p = 0.05) the
+    # simpler model is kept.
+    truth = channel_from_rates(1, hamiltonian={"Z": 0.02}, stochastic={"X": 0.01}).unital_block
+    sigma = 1e-3
+    fitted = LinearObservations(1, np.eye(9), truth.reshape(-1), sigma**2 * np.eye(9), tuple(map(str, range(9))))
+    rng = np.random.default_rng(130)
+    held = LinearObservations(1, np.eye(9), truth.reshape(-1) + 0.05 * rng.normal(size=9), 0.05**2 * np.eye(9),
+                              tuple(map(str, range(9))))
+    for t, expect in ((30.0, "big"), (6.0, "small")):
+        off = truth.copy()
+        off[0, 0] += np.sqrt(t) * sigma  # chi2 of 'small' on the fitted data is exactly t
+        fits = [_given("big", truth, 5, fitted), _given("small", off, 3, fitted)]
+        cmp = compare_models(fits, heldout=held)
+        assert cmp.score("small").chi2 == pytest.approx(t, rel=1e-9)
+        # both predict the held-out data within one standard error of each other
+        assert abs(cmp.score("small").heldout_chi2 - cmp.score("big").heldout_chi2) <= cmp.heldout_threshold
+        assert cmp.chosen == expect, cmp.reason
+        if expect == "big":
+            assert cmp.score("small").rejected_by == "big"
+            assert cmp.score("small").rejected_p == pytest.approx(np.exp(-t / 2), rel=1e-9)
+            assert "reject it against 'big'" in cmp.reason
+        else:
+            assert cmp.score("small").rejected_by is None
+        assert cmp.score("big").rejected_by is None
+        # AIC alone is unchanged by the guard: chi2 + 2k = 10 (big) against t + 6
+        assert compare_models(fits).chosen == ("big" if t + 6 > 10 + models.AIC_TIE else "small")
+
+
+def test_heldout_threshold_is_the_standard_error_of_the_best_heldout_chi2():
+    # the held-out chi2 of a model with misfit is noncentral chi-square with n degrees of
+    # freedom and noncentrality lam, variance 2 (n + 2 lam) (common practice); checked here
+    # by simulation: the spread of the best predictor's held-out chi2 over fresh held-out
+    # data against the reported threshold
+    rng = np.random.default_rng(140)
+    n = 1
+    truth = channel_from_rates(n, hamiltonian={"Z": 0.02}, stochastic={"X": 0.004, "Y": 0.003})
+    design = _design(n, rng, n_probes=40)
+    cov = _covariance(design.shape[0], 2e-3, rng)
+    obs = _observe(truth.unital_block, design, cov, rng)
+    fits = _all_fits(obs)
+    ref = compare_models(fits, heldout=_observe(truth.unital_block, design, cov, rng))
+    best = min((s for s in ref.scores if s.rejected_by is None), key=lambda s: s.heldout_chi2).name
+    chi = [compare_models(fits, heldout=_observe(truth.unital_block, design, cov, rng)).score(best).heldout_chi2
+           for _ in range(300)]
+    k = design.shape[0]
+    lam = max(np.mean(chi) - k, 0.0)
+    assert np.std(chi, ddof=1) == pytest.approx(np.sqrt(2 * (k + 2 * lam)), rel=0.15)
+    assert ref.heldout_threshold == pytest.approx(np.sqrt(2 * k + 4 * max(ref.score(best).heldout_chi2 - k, 0)))
+    assert compare_models(fits).heldout_threshold is None
 
 
 # ---- input validation -------------------------------------------------------------------------
