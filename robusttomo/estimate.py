@@ -87,6 +87,7 @@ class ProbeSet:
     condition_number : float
         2-norm condition number of the ``(P, D*D)`` matrix of flattened unital blocks
         (``D = d*d - 1``); finite iff the probes span the unital block (needs ``P >= D*D``).
+        For the shipped three-qubit basis this is the stored value, recomputed by the tests.
     """
 
     n_qubits: int
@@ -154,9 +155,19 @@ def probes_from_cliffords(n_qubits: int, indices: object) -> ProbeSet:
         raise ValueError(f"'indices' must lie in [0, {order}); got min {idx.min()}, max {idx.max()}")
     if np.unique(idx).size != idx.size:
         raise ValueError("'indices' must not repeat a Clifford")
+    return _clifford_probes(n, idx.astype(np.int64), None)
+
+
+def _clifford_probes(n: int, idx: np.ndarray, condition: float | None) -> ProbeSet:
+    """ProbeSet of validated Clifford indices; ``condition`` given for shipped tables.
+
+    A shipped table carries its (test-checked) condition number: the SVD of the (3969, 3969)
+    three-qubit matrix would take tens of seconds on every first use.
+    """
     ptms = clifford_ptms(n, idx)
     labels = tuple(_circuit_label(c) for c in clifford_circuits(n, idx))
-    return ProbeSet(n, labels, _readonly(ptms), _readonly(idx.astype(np.int64)), _condition(ptms))
+    cond = _condition(ptms) if condition is None else float(condition)
+    return ProbeSet(n, labels, _readonly(ptms), _readonly(idx), cond)
 
 
 def probes_from_unitaries(unitaries: object, labels: object) -> ProbeSet:
@@ -236,26 +247,35 @@ def default_probes(n_qubits: int, *, overcomplete: bool = False) -> ProbeSet:
     """The default, deterministic, well-conditioned Clifford probe basis, identity first.
 
     ``(d*d - 1)**2`` probes (9, 225, 3969 for 1, 2, 3 qubits) whose unital blocks are linearly
-    independent, chosen by a greedy Gram-Schmidt scan of the Clifford group in index order
-    (largest residual first).  ``overcomplete=True`` gives all 24 one-qubit Cliffords, or two
-    disjoint bases (450 probes) for two qubits.  For three qubits the scan runs over a fixed
-    pseudo-random pool of Cliffords.
+    independent, read from shipped tables.  One and two qubits: a greedy Gram-Schmidt scan of
+    the Clifford group in index order (largest residual first; ``_default_indices``).  Three
+    qubits: Pauli variants of a greedy cover of the block patterns, thinned by backward
+    optimal-design selection (``benchmarks/make_probe_table3.py``; condition number 182.2
+    instead of about 14000 for a greedy scan of random Cliffords).  ``overcomplete=True``
+    gives all 24 one-qubit Cliffords, or two disjoint bases (450 probes) for two qubits; it is
+    not offered for three qubits.
     """
     from robusttomo._probe_tables import BASES, SECOND_BASES
 
     n = _pauli.check_n_qubits(n_qubits)
+    if n == 3:
+        if overcomplete:
+            raise ValueError("'overcomplete' is not offered for 3 qubits (3969 probes already); got True")
+        from robusttomo._probe_tables3 import BASIS, CONDITION_NUMBER
+
+        return _cached_probes(3, tuple(BASIS), float(CONDITION_NUMBER))
     if n == 1 and overcomplete:
         idx: tuple[int, ...] = tuple(range(24))
-    elif n in BASES:
-        idx = tuple(BASES[n]) + (tuple(SECOND_BASES[n]) if overcomplete else ())
     else:
-        idx = _default_indices(n, bool(overcomplete))
-    return _cached_probes(n, idx)
+        idx = tuple(BASES[n]) + (tuple(SECOND_BASES[n]) if overcomplete else ())
+    return _cached_probes(n, idx, None)
 
 
 @functools.lru_cache(maxsize=8)
-def _cached_probes(n: int, idx: tuple[int, ...]) -> ProbeSet:
-    return probes_from_cliffords(n, np.array(idx, dtype=np.int64))
+def _cached_probes(n: int, idx: tuple[int, ...], condition: float | None) -> ProbeSet:
+    if condition is None:
+        return probes_from_cliffords(n, np.array(idx, dtype=np.int64))
+    return _clifford_probes(n, np.array(idx, dtype=np.int64), condition)
 
 
 # ---- correlations ---------------------------------------------------------------------------
@@ -344,31 +364,185 @@ def _z_matrix(n: int) -> np.ndarray:
     return np.einsum("ixx->xi", p).real.copy()
 
 
-def _measured_and_ideal(r: np.ndarray, w: np.ndarray, z: np.ndarray, d: int, p_ideal: np.ndarray | None):
-    """From final Pauli vectors ``r`` (K, Q, d*d): per-sequence F and G, and outcome probabilities."""
-    q = np.einsum("xi,kqi->kqx", z, r) / d  # ideal probabilities with the probe inserted
-    kap = kappa(d)
-    f = kap * (np.einsum("kqx,kx->kq", q, w) - 1.0 / d)
-    if p_ideal is None:
-        return f, None, q
-    g = kap * (np.einsum("kqx,kx->kq", q, p_ideal) - 1.0 / d)
-    return f, g, q
+#: Target size (array elements) of the per-chunk working arrays of the propagation.
+_CHUNK_ELEMENTS = 1 << 21
+
+
+def _signed_permutations(mats: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """``(perm, sign)`` with ``mats[..., i, :] = sign[..., i] * e_(perm[..., i])``, or None.
+
+    Clifford PTMs are signed permutation matrices, so ``mats @ r`` is the gather
+    ``sign * r[perm]``: exact (a dense product only adds zeros) at ``1/d2`` of the cost.
+    None when any matrix has a row that is not a signed unit vector.
+    """
+    flat = mats.reshape(-1, mats.shape[-1])
+    perm = np.argmax(np.abs(flat), axis=-1)
+    sign = flat[np.arange(flat.shape[0]), perm]
+    if not (np.all(np.abs(sign) == 1.0) and np.count_nonzero(flat) == perm.size):
+        return None
+    return perm.reshape(mats.shape[:-1]), sign.reshape(mats.shape[:-1])
+
+
+@functools.lru_cache(maxsize=None)
+def _permutation_table(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """(perm, sign) of every Clifford's PTM for ``n <= 2``, shape ``(|C_n|, d2)``, read-only."""
+    ps = _signed_permutations(clifford_ptms(n, np.arange(clifford_group_order(n), dtype=np.int64)))
+    assert ps is not None  # Clifford PTMs are signed permutations
+    return _readonly(ps[0]), _readonly(ps[1])
+
+
+def _step_permutations(n: int, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Clifford PTMs of ``idx`` (any shape) as (perm, sign) arrays of shape ``idx.shape + (d2,)``.
+
+    One and two qubits read a per-process table; three qubits look the PTMs up in chunks, so
+    that the dense ``(d2, d2)`` matrices of a large block never exist at once.
+    """
+    d2 = 4**n
+    flat = np.asarray(idx, dtype=np.int64).reshape(-1)
+    if n <= 2:
+        tp, ts = _permutation_table(n)
+        return tp[flat].reshape(idx.shape + (d2,)), ts[flat].reshape(idx.shape + (d2,))
+    perm = np.empty((flat.size, d2), dtype=np.intp)
+    sign = np.empty((flat.size, d2))
+    step = max(1, _CHUNK_ELEMENTS // (d2 * d2))
+    for a in range(0, flat.size, step):
+        ps = _signed_permutations(clifford_ptms(n, flat[a:a + step]))
+        assert ps is not None  # Clifford PTMs are signed permutations
+        perm[a:a + step], sign[a:a + step] = ps
+    return perm.reshape(idx.shape + (d2,)), sign.reshape(idx.shape + (d2,))
+
+
+def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray, final: np.ndarray | None,
+                      e0: np.ndarray) -> np.ndarray:
+    """Pauli vectors ``final W_m A W_(m-1) ... A W_1 e0``, layout ``(Q, K, d2)``.
+
+    ``perm``, ``sign`` ``(K, m, d2)``: the Clifford steps as signed permutations; probe_ptms
+    ``(Q, d2, d2)`` (gathered too when they are signed permutations); final ``(d2, d2)`` or None.
+    Every gather is a ``take`` with flat indices computed once, so a step costs two numpy
+    calls whatever the length.
+    """
+    k, m, d2 = perm.shape
+    q = probe_ptms.shape[0]
+    r = sign[:, 0] * e0[perm[:, 0]]  # (K, d2)
+    r = np.ascontiguousarray(np.broadcast_to(r, (q, k, d2))).reshape(q, k * d2)
+    if m > 1:
+        probe_op = _signed_permutations(probe_ptms)
+        if probe_op is not None:
+            pidx = (np.arange(q)[:, None, None] * (k * d2) + np.arange(k)[None, :, None] * d2
+                    + probe_op[0][:, None, :]).reshape(-1)
+            psign = probe_op[1][:, None, :]
+        else:
+            dense_t = np.swapaxes(probe_ptms, -1, -2)
+        sidx = (np.arange(k)[None, :, None] * d2 + np.swapaxes(perm[:, 1:], 0, 1)).reshape(m - 1, k * d2)
+        ssign = np.swapaxes(sign[:, 1:], 0, 1).reshape(m - 1, k * d2)
+        for t in range(m - 1):
+            if probe_op is not None:
+                r = (np.take(r, pidx).reshape(q, k, d2) * psign).reshape(q, k * d2)
+            else:
+                r = np.matmul(r.reshape(q, k, d2), dense_t).reshape(q, k * d2)
+            r = np.take(r, sidx[t], axis=1)
+            r *= ssign[t]
+    r = r.reshape(q, k, d2)
+    if final is not None:
+        r = r @ final.T
+    return r
 
 
 def _propagate(step_ptms: np.ndarray, probe_ptms: np.ndarray, final: np.ndarray | None, e0: np.ndarray) -> np.ndarray:
     """Pauli vectors ``final W_m A W_(m-1) ... A W_1 e0`` for every sequence and probe.
 
-    step_ptms (K, m, d2, d2), probe_ptms (Q, d2, d2) -> (K, Q, d2).
+    step_ptms (K, m, d2, d2), probe_ptms (Q, d2, d2) -> (K, Q, d2).  Steps that are signed
+    permutations (Clifford PTMs) are applied as gathers, any others as dense products.
     """
+    ops = _signed_permutations(step_ptms)
+    if ops is not None:
+        return np.ascontiguousarray(np.swapaxes(_propagate_signed(*ops, probe_ptms, final, e0), 0, 1))
     k, m = step_ptms.shape[:2]
     r = np.einsum("kij,j->ki", step_ptms[:, 0], e0)
-    r = np.broadcast_to(r[:, None, :], (k, probe_ptms.shape[0], r.shape[-1]))
+    r = np.broadcast_to(r[None], (probe_ptms.shape[0],) + r.shape)
     for t in range(1, m):
-        r = np.einsum("qij,kqj->kqi", probe_ptms, r, optimize=True)
-        r = np.einsum("kij,kqj->kqi", step_ptms[:, t], r, optimize=True)
+        r = np.matmul(r, np.swapaxes(probe_ptms, -1, -2))
+        r = np.einsum("kij,qkj->qki", step_ptms[:, t], r)
     if final is not None:
-        r = np.einsum("ij,kqj->kqi", final, r)
-    return np.ascontiguousarray(r)
+        r = r @ final.T
+    return np.ascontiguousarray(np.swapaxes(r, 0, 1))
+
+
+def _filtered(r: np.ndarray, zw: np.ndarray, d: int) -> np.ndarray:
+    """Per-sequence filtered value ``kappa (sum_x w(x) <x|rho|x> - 1/d)`` from ``r`` (Q, K, d2).
+
+    ``zw`` (K, d2) is ``w @ Z``: ``sum_x w(x) <x|rho|x> = r . zw / d``.  Returns (K, Q).
+    """
+    return kappa(d) * (np.einsum("qki,ki->kq", r, zw) / d - 1.0 / d)
+
+
+def _length_two_values(phys: np.ndarray, u: np.ndarray, u_id: np.ndarray, v: np.ndarray, kap: float):
+    """Per-sequence length-2 values ``kappa u_s^T B_p v_s`` of every probe, measured and ideal.
+
+    One matrix product per chunk of sequences: the flattened outer products ``u_s v_s^T``
+    ``(K, D*D)`` times the flattened unital blocks ``(D*D, P)``, so no ``(K, P, D)``
+    intermediate is formed.  Returns f, g, each (K, P).
+    """
+    p = phys.shape[0]
+    dd = u.shape[1]
+    blocks = phys[:, 1:, 1:].reshape(p, dd * dd).T  # (D*D, P); a copy: the slice is strided
+    k = u.shape[0]
+    f = np.empty((k, p))
+    g = np.empty((k, p))
+    kc = max(1, _CHUNK_ELEMENTS // (2 * max(p, dd * dd)))
+    for a in range(0, k, kc):
+        sl = slice(a, a + kc)
+        outer = (np.concatenate([u[sl], u_id[sl]])[:, :, None] * np.concatenate([v[sl], v[sl]])[:, None, :])
+        prod = outer.reshape(-1, dd * dd) @ blocks
+        h = prod.shape[0] // 2
+        f[sl] = kap * prod[:h]
+        g[sl] = kap * prod[h:]
+    return f, g
+
+
+def _identity_position(probes: ProbeSet) -> int | None:
+    """:attr:`ProbeSet.identity_index` without scanning every PTM of a Clifford probe set.
+
+    Clifford index 0 is the identity and indices do not repeat, so its position is the answer.
+    """
+    hit = np.flatnonzero(probes.clifford_indices == 0)
+    if hit.size and np.array_equal(probes.ptms[hit[0]], np.eye(probes.ptms.shape[1])):
+        earlier = probes.clifford_indices[:hit[0]] < 0  # non-Clifford probes before it could be identities
+        if not earlier.any():
+            return int(hit[0])
+    return probes.identity_index
+
+
+def _long_length(m: int, perm, sign, shots, zw, lam2, ident, n_probes: int, phys, lam_ideal, final, e0, z,
+                 d: int, mu_base) -> LengthStats:
+    """Statistics of one length ``m >= 3``: the information rule, then chunked propagation.
+
+    The ideal run (the error-free sequence, for the control variate) rides along with the
+    first chunk of probes, so long sequences are walked through once per chunk.
+    """
+    if lam2 is None:
+        sel = np.arange(n_probes) if ident is None else np.array([ident])
+    else:
+        keep = (m - 1) * np.abs(np.clip(lam2, -1, 1)) ** (m - 2) >= INFO_THRESHOLD
+        if ident is not None:
+            keep[ident] = True
+        sel = np.flatnonzero(keep)
+    sel = sel.astype(np.int64)
+    k, _, d2 = perm.shape
+    f = np.empty((k, sel.size))
+    g = np.empty((k, sel.size))
+    qc = max(1, _CHUNK_ELEMENTS // (k * d2))  # probes per chunk: bounded working arrays
+    first = min(sel.size, max(qc - 1, 1))
+    r = _propagate_signed(perm, sign, np.concatenate([lam_ideal[None], phys[sel[:first]]]), final, e0)
+    p_ideal = np.clip(r[0] @ z.T / d, 0.0, None)
+    zp = p_ideal @ z
+    f[:, :first] = _filtered(r[1:], zw, d)
+    g[:, :first] = _filtered(r[1:], zp, d)
+    for a0 in range(first, sel.size, qc):
+        r = _propagate_signed(perm, sign, phys[sel[a0:a0 + qc]], final, e0)
+        f[:, a0:a0 + qc] = _filtered(r, zw, d)
+        g[:, a0:a0 + qc] = _filtered(r, zp, d)
+    return LengthStats(m, sel, f, g, mu_base[sel] ** (m - 1), shots)
 
 
 def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | None = None,
@@ -413,12 +587,13 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
     else:
         gate = None
         lam_ideal = np.eye(d2)
-    phys = np.einsum("pij,jk->pik", probes.ptms, lam_ideal)  # probes B o G (G first)
+    # probes B o G (G first); the reference run needs no product
+    phys = probes.ptms if gate is None else np.matmul(probes.ptms, lam_ideal)
     final = None if gate is None else gate
     z = _z_matrix(n)
     e0 = z[0].copy()  # Pauli vector of |0><0|: tr(P_i |0><0|) = <0|P_i|0>
-    mu_base = (np.trace(probes.ptms, axis1=1, axis2=2) - 1.0) / (d2 - 1)
-    ident = probes.identity_index
+    mu_base = (np.einsum("pii->p", probes.ptms) - 1.0) / (d2 - 1)
+    ident = _identity_position(probes)
     # information rule needs the length-1 and length-2 estimates first
     grouped: dict[int, list] = {m: [] for m in lengths}
     for b in blocks:
@@ -429,51 +604,45 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
         cnt = np.concatenate([counts.for_block(plan, b) for b in grouped[m]], axis=0)  # type: ignore[attr-defined]
         shots = cnt.sum(axis=1)
         w = cnt / shots[:, None]
-        steps = clifford_ptms(n, idx.reshape(-1)).reshape(idx.shape[0], m, d2, d2)
-        return steps, w, shots
+        perm, sign = _step_permutations(n, idx)
+        return perm, sign, w, shots
 
     stats: list[LengthStats] = []
     m2 = (None, None, None, None)
     lam2 = None
     c1 = None
+    kap = kappa(d)
     for m in lengths:
-        steps, w, shots = block_arrays(m)
-        ideal_r = _propagate(steps, lam_ideal[None], final, e0)  # as run, no error
-        p_ideal = np.clip(np.einsum("xi,ki->kx", z, ideal_r[:, 0]) / d, 0.0, None)
+        perm, sign, w, shots = block_arrays(m)
+        k = perm.shape[0]
+        zw = w @ z  # (K, d2): sum_x w(x) Z[x, :]
+        if m >= 3:
+            stats.append(_long_length(m, perm, sign, shots, zw, lam2, ident, probes.n_probes, phys,
+                                      lam_ideal, final, e0, z, d, mu_base))
+            continue
+        ideal_r = _propagate_signed(perm, sign, lam_ideal[None], final, e0)[0]  # as run, no error
+        p_ideal = np.clip(ideal_r @ z.T / d, 0.0, None)
+        zp = p_ideal @ z
         if m == 1:
-            f, g, _ = _measured_and_ideal(ideal_r, w, z, d, p_ideal)
+            f = _filtered(ideal_r[None], zw, d)
+            g = _filtered(ideal_r[None], zp, d)
             sel = np.zeros(1, dtype=np.int64)  # stands for every probe
             stats.append(LengthStats(1, sel, f, g, np.ones(1), shots))
             c1 = float(np.mean(f[:, 0] - (g[:, 0] - 1.0)))
             continue
         if m == 2:
             sq = np.sqrt(d)
-            last = steps[:, 1] if final is None else np.einsum("ij,kjl->kil", final, steps[:, 1])
-            v = np.einsum("kij,j->ki", steps[:, 0], e0)[:, 1:] / sq
-            zw = w @ z  # (K, d2): sum_x w(x) Z[x, :]
-            zp = p_ideal @ z
-            u = np.einsum("kji,kj->ki", last, zw)[:, 1:] / sq
-            u_id = np.einsum("kji,kj->ki", last, zp)[:, 1:] / sq
-            kap = kappa(d)
-            bl = phys[:, 1:, 1:]
-            bv = np.einsum("pij,kj->kpi", bl, v, optimize=True)
-            f = kap * np.einsum("kpi,ki->kp", bv, u, optimize=True)
-            g = kap * np.einsum("kpi,ki->kp", bv, u_id, optimize=True)
+            rows = np.arange(k)[:, None]
+            v = sign[:, 0] * e0[perm[:, 0]]  # W_1 e0
+            # u = last^T y with last = W_2 (or G W_2): scatter through W_2's permutation
+            u = np.zeros((k, d2))
+            u_id = np.zeros((k, d2))
+            u[rows, perm[:, 1]] = sign[:, 1] * (zw if final is None else zw @ final)
+            u_id[rows, perm[:, 1]] = sign[:, 1] * (zp if final is None else zp @ final)
+            v, u, u_id = v[:, 1:] / sq, u[:, 1:] / sq, u_id[:, 1:] / sq
+            f, g = _length_two_values(phys, u, u_id, v, kap)
             sel = np.arange(probes.n_probes, dtype=np.int64)
             stats.append(LengthStats(2, sel, f, g, mu_base.copy(), shots))
             m2 = (u, v, u_id, lam_ideal[1:, 1:] / ((d2 - 1) * kap))
             lam2 = np.mean(f - (g - mu_base), axis=0) / c1 if c1 else None
-            continue
-        if lam2 is None:
-            sel = np.arange(probes.n_probes) if ident is None else np.array([ident])
-        else:
-            keep = (m - 1) * np.abs(np.clip(lam2, -1, 1)) ** (m - 2) >= INFO_THRESHOLD
-            if ident is not None:
-                keep[ident] = True
-            sel = np.flatnonzero(keep)
-        sel = sel.astype(np.int64)
-        r = _propagate(steps, phys[sel], final, e0)
-        f, g, _ = _measured_and_ideal(r, w, z, d, p_ideal)
-        stats.append(LengthStats(m, sel, f, g, mu_base[sel] ** (m - 1), shots))
-
     return Correlations(n, kind, probes, tuple(lengths), tuple(stats), m2[0], m2[1], m2[2], m2[3], gate)

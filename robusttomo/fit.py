@@ -300,7 +300,113 @@ def _joint_fit(design: _Design, corr: Correlations, means: list[np.ndarray], sig
 
 
 def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
-    """Covariance of (c, lambdas) by the sandwich formula, plus chi2 and normalized residuals."""
+    """Covariance of (c, lambdas) by the sandwich formula, plus chi2 and normalized residuals.
+
+    ``cov = H^+ (J^T W S W J) H^+`` with ``H = J^T W J``, ``W = diag(1/stderr**2)`` and ``S`` the
+    block-diagonal (one block per length) covariance of the means.  Every Jacobian row has two
+    entries (column 0 for ``c``, one probe column), so ``H`` is an arrowhead matrix: its inverse
+    is a diagonal plus a rank-one term, and the meat is accumulated per length from the
+    centred per-sequence values.  That costs ``O(K P**2)`` instead of the ``O(P**3)`` of dense
+    products and a pseudo-inverse (:func:`_sandwich_dense`, used instead when ``H`` is too
+    ill-conditioned for the closed form to equal the pseudo-inverse).
+    """
+    p = design.n_probes
+    lengths = corr.lengths
+    h00 = 0.0
+    h0p = np.zeros(p)
+    hpp = np.zeros(p)
+    parts = []  # per length: probe columns, alpha = w a, beta = w b
+    res_l, sg_l = [], []
+    fast_only = np.ones(p, dtype=bool)
+    fast_only[design.slow] = False
+    for li, m in enumerate(lengths):
+        w = 1.0 / sig[li] ** 2
+        if m == 1:
+            a_ = np.ones(1)
+            b_ = np.zeros(1)
+            pr = None
+            res_l.append(means[0] - c)
+        else:
+            pr = design.probe_rows[li]
+            lm = lam[pr]
+            a_ = lm ** (m - 1)
+            b_ = c * (m - 1) * lm ** (m - 2)
+            h0p += np.bincount(pr, weights=w * a_ * b_, minlength=p)
+            hpp += np.bincount(pr, weights=w * b_ * b_, minlength=p)
+            res_l.append(means[li] - c * a_)
+        h00 += float(np.sum(w * a_ * a_))
+        sg_l.append(sig[li])
+        parts.append((pr, w * a_, w * b_))
+    res = np.concatenate(res_l)
+    sg = np.concatenate(sg_l)
+    chi2 = float(np.sum((res / sg) ** 2))
+    dof = int(res.size - (1 + design.slow.size + int(fast_only.sum()) * (2 in lengths)))
+
+    on = hpp > 0  # probes without data have zero bread rows: the pseudo-inverse leaves them at 0
+    e = np.zeros(p)
+    e[on] = 1.0 / hpp[on]
+    zt = -h0p * e
+    schur = h00 + float(np.sum(h0p * zt))
+    if not _arrowhead_ok(h00, h0p, hpp, on, e, zt, schur):
+        return _sandwich_dense(design, corr, c, lam, means, sig, corrected)
+
+    meat = np.zeros((p + 1, p + 1))
+    for li, (pr, alpha, beta) in enumerate(parts):
+        x = corrected[li] - corrected[li].mean(axis=0)
+        k = x.shape[0]
+        scale = 1.0 / (k * (k - 1)) if k > 1 else float("nan")  # np.cov(ddof=1) / k
+        xa = x @ alpha
+        meat[0, 0] += scale * float(xa @ xa)
+        if pr is None:
+            continue
+        xb = x * beta
+        cross = scale * (xa @ xb)
+        meat[0, 1 + pr] += cross
+        meat[1 + pr, 0] += cross
+        gram = xb.T @ xb
+        gram *= scale
+        if pr.size == p and np.array_equal(pr, np.arange(p)):
+            meat[1:, 1:] += gram
+        else:
+            meat[1 + pr[:, None], 1 + pr[None, :]] += gram
+    # H^+ = E + z z^T / schur with E = diag(0, e), z = (1, zt)
+    z = np.concatenate([[1.0], zt])
+    ev = np.concatenate([[0.0], e])
+    mz = meat @ z
+    emz = ev * mz
+    zmz = float(z @ mz)
+    cov = meat
+    cov *= ev[:, None]
+    cov *= ev[None, :]
+    left = emz / schur
+    right = left + (zmz / schur**2) * z
+    cov += left[:, None] * z[None, :]
+    cov += z[:, None] * right[None, :]
+    return cov, chi2, max(dof, 0), res / sg
+
+
+def _arrowhead_ok(h00: float, h0p: np.ndarray, hpp: np.ndarray, on: np.ndarray, e: np.ndarray, zt: np.ndarray,
+                  schur: float) -> bool:
+    """Whether the closed-form inverse of the bread equals its pseudo-inverse (rcond 1e-12).
+
+    True when a lower bound of the smallest eigenvalue of the nonzero part (``1 / ||H^-1||``,
+    with ``||H^-1|| <= max(e) + ||z||**2 / schur``) exceeds ``1e-11`` times a Gershgorin upper
+    bound of the largest, so that no eigenvalue falls under the pseudo-inverse cut.
+    """
+    if not (np.isfinite(h00) and np.all(np.isfinite(h0p)) and np.all(np.isfinite(hpp))):
+        return False
+    if not schur > 0:
+        return False
+    inv_norm = (float(e.max()) if on.any() else 0.0) + (1.0 + float(np.sum(zt * zt))) / schur
+    lam_max = max(h00 + float(np.sum(np.abs(h0p))), float(np.max(hpp + np.abs(h0p), initial=0.0)))
+    return 1.0 / inv_norm > 1e-11 * lam_max
+
+
+def _sandwich_dense(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
+    """Reference form of :func:`_sandwich` with dense Jacobian, bread and meat (``O(P**3)``).
+
+    Used when the structured inverse would not match the pseudo-inverse (a near-singular bread).
+    """
     p = design.n_probes
     lengths = corr.lengths
     rows_j, rows_res = [], []
