@@ -8,6 +8,7 @@ The result, a frozen :class:`Reconstruction`, saves to and loads from HDF5.
 
 from __future__ import annotations
 
+import copyreg
 import dataclasses as _dc
 import enum
 import warnings as _warnings
@@ -407,6 +408,11 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     reference and interleaved runs are resampled together so the uncertainty of ``L``
     propagates into ``L_G``).
 
+    The result does not depend on ``jobs``: every part of the analysis (each range family,
+    each group of bootstrap replicates, the models) starts its solvers from a fixed state, and
+    replicate ``i`` depends only on ``seed`` and ``i`` (docs/method-analysis.md, "Parallel
+    parts").
+
     Parameters
     ----------
     plan : robusttomo.plan.Plan
@@ -432,7 +438,11 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
         Compute the diamond distance (one semidefinite program per bootstrap replicate);
         ``False`` reports it as NaN, for fast studies of the other figures.
     jobs : int, default 1
-        Worker processes for the decay bootstrap.
+        Worker processes for the convex stages after the point fit (range programs, groups of
+        bootstrap re-fits, models), which run in parallel when ``jobs > 1``.  The default is 1
+        because analyses are themselves the work units of ``robusttomo batch`` (local pool or
+        Dask workers), where nested process pools would oversubscribe the cores; pass the
+        number of free cores for a single interactive analysis.
     solver : {"SCS", "CLARABEL"}
         First convex solver (the other is the fallback).
     progress : callable, optional
@@ -452,13 +462,151 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     >>> bool(rec.figures.average_gate_fidelity.value > 0.97)
     True
     """
-    from robusttomo import models as mdl
-    from robusttomo import reconstruct as rc
-    from robusttomo.plan import SequenceKind
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise ValueError(f"'jobs' must be a positive integer; got {jobs!r}")
 
     def tick(stage: str, done: int, total: int) -> None:
         if progress is not None:
             progress(stage, done, total)  # type: ignore[operator]
+
+    prep = _prepare_analysis(plan, counts, target=target, reference=reference, bootstrap=bootstrap, seed=seed,
+                             probes=probes, control_variate=control_variate, models=models, ranges=ranges,
+                             diamond=diamond, solver=solver, tick=tick)
+    try:
+        if jobs == 1:
+            results = _run_parts_here(prep, _analysis_parts(prep, groups=1), tick)
+        else:
+            results = _run_parts_pool(prep, _analysis_parts(prep, groups=_GROUPS_PER_JOB * int(jobs)), int(jobs),
+                                      tick)
+    finally:
+        _forget_fitters(prep)
+    return _assemble_analysis(prep, results)
+
+
+# ---- the analysis in parts ----------------------------------------------------------------------
+#
+# analyze() = _prepare_analysis (serial: correlations, decays with their bootstrap, point fit)
+#           -> parts (independent of each other, any order, any process)
+#           -> _assemble_analysis.
+# A part is a tuple of plain values: ("ranges", "joint"), ("ranges", "profile"), ("point",),
+# ("models",) or ("replicates", start, stop); _run_part(prep, part) returns a plain dict.
+# Each part starts every solver from a fixed state (fresh range programs; the point fit's SCS
+# solution for every replicate), so the assembled result is the same however the parts are
+# distributed (robusttomo.batch sends them to Dask workers).
+
+def _reduce_channel(ch: Channel) -> tuple:
+    return (Channel, (np.array(ch.ptm),))
+
+
+# Channel's immutability (__slots__ with a refusing __setattr__) defeats pickle's default
+# reconstruction; a prepared analysis travels to worker processes (forkserver, Dask) by pickle.
+# Rebuilding from the PTM restores the same bits (a Channel is its PTM).
+copyreg.pickle(Channel, _reduce_channel)
+
+#: Groups of bootstrap replicates per worker process in analyze(jobs > 1): enough to balance
+#: the load against the two long range parts, few enough that each group is seconds of work.
+_GROUPS_PER_JOB = 4
+#: Fitters of the observations seen in this process, reused by replicate groups (keyed by a
+#: digest of the observations and the solver); a handful is enough.
+_FITTERS: dict[str, object] = {}
+_FITTERS_MAX = 4
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    """Output of the serial stages: everything the parts need (plain data, picklable).
+
+    ``ref_state`` / ``main_state`` are the SCS starting points after the point fits
+    (``CptpFitter._solver_state``); every bootstrap replicate starts from them.
+    """
+
+    n_qubits: int
+    interleaved: bool
+    label: str
+    gate: np.ndarray
+    inter_gate: np.ndarray | None
+    solver: str
+    bootstrap: int
+    seed: int | None
+    control_variate: bool
+    models: bool
+    ranges: bool
+    diamond: bool
+    corr_ref: Correlations
+    corr_int: Correlations | None
+    dec_ref: DecayResult
+    dec_int: DecayResult | None
+    obs_ref: LinearObservations
+    obs_int: LinearObservations | None
+    obs_main: LinearObservations
+    fit_ref: object
+    fit_main: object
+    error_channel: Channel
+    anchor_weight: float
+    warnings: tuple[str, ...]
+    ref_state: dict
+    main_state: dict
+    plan_fingerprint: str
+    counts_fingerprint: str
+
+    @property
+    def replicate_diamond(self) -> bool:
+        """Whether each replicate needs its diamond distance (only without the profile interval)."""
+        return self.diamond and not self.ranges
+
+    @property
+    def dec_main(self) -> DecayResult:
+        return self.dec_int if self.interleaved else self.dec_ref  # type: ignore[return-value]
+
+
+def _obs_key(obs: LinearObservations, solver: str) -> str:
+    import hashlib
+
+    h = hashlib.sha256(solver.encode())
+    for arr in (obs.design, obs.covariance, obs.values):
+        a = np.ascontiguousarray(arr, dtype=float)
+        h.update(str(a.shape).encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _fitter_for(obs: LinearObservations, solver: str, fitter: object = None) -> object:
+    """The cached fitter of ``obs`` in this process (built on first use; ``fitter`` seeds it)."""
+    from robusttomo import reconstruct as rc
+
+    key = _obs_key(obs, solver)
+    if key not in _FITTERS:
+        while len(_FITTERS) >= _FITTERS_MAX:
+            _FITTERS.pop(next(iter(_FITTERS)))
+        _FITTERS[key] = fitter if fitter is not None else rc.CptpFitter(obs, solver=solver)
+    return _FITTERS[key]
+
+
+def _forget_fitters(prep: _Prepared) -> None:
+    for obs in {id(o): o for o in (prep.obs_ref, prep.obs_main)}.values():
+        _FITTERS.pop(_obs_key(obs, prep.solver), None)
+
+
+def _functional(n_qubits: int, inter_gate: np.ndarray | None, ref_channel: Channel) -> np.ndarray:
+    """Linear functional of ``vec(B)`` equal to the identity probe's decay (see ``_anchor``).
+
+    Reference mode (``inter_gate`` None): ``tr(B) / (d*d - 1)``; interleaved mode:
+    ``lambda_int(identity) = tr(B_G K) / (d*d - 1)``, ``K = B(G L G^dagger)``.
+    """
+    d2m1 = 4**n_qubits - 1
+    if inter_gate is None:
+        return np.eye(d2m1).reshape(-1) / d2m1
+    rg = _pauli.ptm_of_unitary(inter_gate)
+    k = (rg @ ref_channel.ptm @ rg.T)[1:, 1:]
+    return k.T.reshape(-1) / d2m1  # lambda_int(identity) = tr(B_G K) / (d*d - 1)
+
+
+def _prepare_analysis(plan: object, counts: object, *, target: object, reference: tuple | None, bootstrap: int,
+                      seed: int | None, probes: ProbeSet | None, control_variate: bool, models: bool, ranges: bool,
+                      diamond: bool, solver: str, tick) -> _Prepared:
+    """Validate the inputs and run the serial stages: correlations, decays, point fit, anchoring."""
+    from robusttomo import reconstruct as rc
+    from robusttomo.plan import SequenceKind
 
     if isinstance(bootstrap, bool) or not isinstance(bootstrap, (int, np.integer)) or bootstrap < 0:
         raise ValueError(f"'bootstrap' must be a non-negative integer; got {bootstrap!r}")
@@ -474,11 +622,13 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     with _warnings.catch_warnings():
         _warnings.simplefilter("ignore", RuntimeWarning)
         tick("correlations", 0, 1)
+        inter_gate = None
         if interleaved:
             ref_plan, ref_counts = (plan, counts) if reference is None else reference
             corr_ref = compute_correlations(ref_plan, ref_counts, probes=probes, kind=BlockKind.REFERENCE)
             corr_int = compute_correlations(plan, counts, probes=corr_ref.probes, kind=BlockKind.INTERLEAVED)
-            gate = np.asarray(plan.interleave.unitary)  # type: ignore[attr-defined]
+            inter_gate = np.asarray(plan.interleave.unitary, dtype=complex)  # type: ignore[attr-defined]
+            gate = inter_gate
             label = str(plan.interleave.label)  # type: ignore[attr-defined]
         else:
             corr_ref = compute_correlations(plan, counts, probes=probes, kind=BlockKind.REFERENCE)
@@ -490,9 +640,11 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
             label = "user target"
         tick("correlations", 1, 1)
         tick("decay fit", 0, 1)
-        dec_ref = fit_decays(corr_ref, control_variate=control_variate, bootstrap=bootstrap, seed=seed, jobs=jobs)
+        # the decay bootstrap is a small part of the cost; in-process it avoids a pool start-up
+        # (replicate i depends only on the seed and i either way)
+        dec_ref = fit_decays(corr_ref, control_variate=control_variate, bootstrap=bootstrap, seed=seed)
         dec_int = (None if corr_int is None else
-                   fit_decays(corr_int, control_variate=control_variate, bootstrap=bootstrap, seed=seed, jobs=jobs))
+                   fit_decays(corr_int, control_variate=control_variate, bootstrap=bootstrap, seed=seed))
         tick("decay fit", 1, 1)
         warn += [f"reference run: {w}" if interleaved else w for w in dec_ref.warnings]
         if dec_int is not None:
@@ -502,141 +654,386 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
         tick("convex fit", 0, 1)
         fitter = rc.CptpFitter(obs_ref, solver=solver)
         fit_ref = fitter.fit()
-        l_ref = fit_ref.channel
         if interleaved:
             obs_int = dec_int.observations()  # type: ignore[union-attr]
-            fit_main = rc.isolate_gate_error(obs_int, l_ref, plan.interleave.unitary, solver=solver)  # type: ignore[attr-defined]
-            obs_main = rc.gate_error_observations(obs_int, l_ref, plan.interleave.unitary)  # type: ignore[attr-defined]
+            # the same program isolate_gate_error solves, kept for the replicates' warm start
+            obs_main = rc.gate_error_observations(obs_int, fit_ref.channel, inter_gate)
             main_fitter = rc.CptpFitter(obs_main, solver=solver)
+            fit_main = main_fitter.fit()
         else:
+            obs_int = None
             fit_main, obs_main, main_fitter = fit_ref, obs_ref, fitter
-        ident = dec_ref._ident()
-        d2m1 = d * d - 1
-
-        def functional(ref_channel: Channel) -> np.ndarray:
-            if not interleaved:
-                return np.eye(d2m1).reshape(-1) / d2m1
-            rg = _pauli.ptm_of_unitary(plan.interleave.unitary)  # type: ignore[attr-defined]
-            k = (rg @ ref_channel.ptm @ rg.T)[1:, 1:]
-            return k.T.reshape(-1) / d2m1  # lambda_int(identity) = tr(B_G K) / (d*d - 1)
-
+        _fitter_for(obs_ref, solver, fitter)
+        _fitter_for(obs_main, solver, main_fitter)
         dec_main = dec_int if interleaved else dec_ref
-        err, anchor_weight = _anchor(fit_main.channel, functional(l_ref), float(dec_main.lambdas[ident]))
+        ident = dec_ref._ident()
+        err, anchor_weight = _anchor(fit_main.channel, _functional(n, inter_gate, fit_ref.channel),
+                                     float(dec_main.lambdas[ident]))  # type: ignore[union-attr]
         tick("convex fit", 1, 1)
         if fit_main.status is not rc.FitStatus.CERTIFIED:
             warn.append(f"the convex solver did not certify its solution ({fit_main.message}); "
                         "treat the channel as approximate")
         if fit_main.fell_back:
             warn.append(f"the first convex solver failed and {fit_main.solver} was used instead")
-
-        # ranges of what the data cannot fix (joint 95% region), and the diamond distance's
-        # profile-likelihood interval (per-quantity region chi2 <= chi2_fit + 3.84): the
-        # bootstrap of a constrained, noise-biased figure does not cover well, the profile does
-        dd_profile: tuple[float, float] | None = None
-        if ranges:
-            tick("ranges", 0, 4)
-            nu = main_fitter.nonunital_range(fit_main, region=rc.Region.JOINT)
-            tick("ranges", 1, 4)
-            nu_arr = np.column_stack([nu.minimum, nu.maximum])
-            if diamond:
-                dr = main_fitter.diamond_range(fit_main, nonunital=nu, region=rc.Region.JOINT,
-                                               ascent_starts=1, ascent_steps=1)
-                span = DiamondSpan(float(dr.minimum), float(dr.maximum), bool(dr.max_is_bound), dr.method,
-                                   float(dr.maximum_attained), float(dr.maximum_certified))
-                tick("ranges", 2, 4)
-                nu_p = main_fitter.nonunital_range(fit_main, region=rc.Region.PROFILE)
-                tick("ranges", 3, 4)
-                dp = main_fitter.diamond_range(fit_main, nonunital=nu_p, region=rc.Region.PROFILE,
-                                               maximum_rule=rc.MaximumRule.ATTAINED, ascent_starts=2,
-                                               ascent_steps=2)
-                dd_profile = (float(dp.minimum), float(dp.maximum_attained))
-            else:
-                span = DiamondSpan(float("nan"), float("nan"), True, "not computed (diamond=False)")
-            tick("ranges", 4, 4)
-        else:
-            nu_arr = np.full((d2m1, 2), np.nan)
-            span = DiamondSpan(float("nan"), float("nan"), True, "not computed (ranges=False)")
-        # replicates need the diamond distance (and so their non-unital part) only without the profile
-        dd_reps = diamond and dd_profile is None
-
-        # point figures and bootstrap replicates
-        point = _channel_figures(err, diamond=diamond)
-        reps: list[dict[str, object]] = []
-        if bootstrap > 0:
-            ref_vals = dec_ref.bootstrap_lambdas
-            # the reference replicates' non-unital part is needed only when they are the answer
-            ref_b = fitter.fit_replicates(ref_vals, nonunital_rule=dd_reps and not interleaved)
-            fits_b = ref_b
-            if interleaved:
-                int_vals = dec_int.bootstrap_lambdas  # type: ignore[union-attr]
-                moved = np.array([_gate_frame_values(obs_int, fb.channel, l_ref, plan.interleave.unitary, v)
-                                  for fb, v in zip(ref_b, int_vals)])
-                fits_b = main_fitter.fit_replicates(moved, nonunital_rule=dd_reps)
-            for i, fb in enumerate(fits_b):
-                target_b = float(dec_main.bootstrap_lambdas[i, ident])  # type: ignore[index]
-                ch_b, _ = _anchor(fb.channel, functional(ref_b[i].channel), target_b)
-                reps.append(_channel_figures(ch_b, diamond=dd_reps))
-                reps[-1]["block"] = ch_b.unital_block
-                tick("bootstrap", i + 1, len(fits_b))
-
-        def rep(key: str) -> np.ndarray | None:
-            return None if not reps else np.array([r[key] for r in reps], dtype=float)
-
-        def rep_map(key: str, lab: str) -> np.ndarray | None:
-            return None if not reps else np.array([r[key][lab] for r in reps], dtype=float)  # type: ignore[index]
-
-        # fidelity from the identity decay(s) alone: the benchmarking number in reference mode,
-        # the classic interleaved estimate 1 - (d-1)(1 - p_int/p_ref)/d in interleaved mode
-        p_main = float(dec_main.lambdas[ident])
-        p_rep = None if dec_main.bootstrap_lambdas is None else dec_main.bootstrap_lambdas[:, ident]
-        if interleaved:
-            p_ref0 = float(dec_ref.lambdas[ident])
-            p_main = p_main / p_ref0
-            if p_rep is not None and dec_ref.bootstrap_lambdas is not None:
-                p_rep = p_rep / dec_ref.bootstrap_lambdas[:, ident]
-        dfid_value = 1 - (d - 1) * (1 - p_main) / d
-        dfid = 1 - (d - 1) * (1 - np.asarray(p_rep)) / d if p_rep is not None else None
-        figures = Figures(
-            average_gate_fidelity=_interval(point["agf"], rep("agf")),  # type: ignore[arg-type]
-            entanglement_fidelity=_interval(point["ef"], rep("ef")),  # type: ignore[arg-type]
-            diamond_distance=(_interval(point["dd"], rep("dd")) if dd_profile is None  # type: ignore[arg-type]
-                              else Interval(float(point["dd"]), *dd_profile)),
-            diamond_distance_range=span,
-            unitarity=_interval(point["unitarity"], rep("unitarity")),  # type: ignore[arg-type]
-            coherent_share=_interval(point["coh"], rep("coh")),  # type: ignore[arg-type]
-            decay_fidelity=_interval(dfid_value, dfid),
-            pauli_error_rates={k: _interval(v, rep_map("pauli", k)) for k, v in point["pauli"].items()},  # type: ignore[union-attr]
-            hamiltonian={k: _interval(v, rep_map("ham", k)) for k, v in point["ham"].items()},  # type: ignore[union-attr]
-            stochastic={k: _interval(v, rep_map("sto", k)) for k, v in point["sto"].items()},  # type: ignore[union-attr]
-        )
-
-        # reduced models and the choice between them
-        summaries: list[ModelSummary] = []
-        chosen = "full"
-        if models:
-            tick("models", 0, 1)
-            summaries, chosen, mwarn = _model_summaries(
-                mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_variate, interleaved, plan, solver)
-            warn += mwarn
-            tick("models", 1, 1)
-
-    classic = _classic_interleaved(dec_ref, dec_int, n) if dec_int is not None else None
-    block_err = (float(np.sqrt(np.mean([np.sum((r["block"] - err.unital_block) ** 2) for r in reps])))
-                 if reps else float("nan"))
-    opts = {"bootstrap": int(bootstrap), "seed": -1 if seed is None else int(seed),
-            "control_variate": bool(control_variate), "probes": f"{dec_ref.probes.n_probes} probes",
-            "solver": str(solver)}
-    return Reconstruction(
-        n_qubits=n, mode=AnalysisMode.INTERLEAVED if interleaved else AnalysisMode.REFERENCE,
-        target_label=label, target_unitary=np.asarray(gate, dtype=complex), error_channel=err,
-        figures=figures, models=tuple(summaries), chosen_model=chosen, decays=dec_ref,
-        interleaved_decays=dec_int, linear_unital_block=np.asarray(fit_main.linear_block),
-        constraint_distance=float(fit_main.linear_distance), nonunital_ranges=nu_arr,
-        solver=str(fit_main.solver), solver_status=str(fit_main.status.value),
-        solver_fell_back=bool(fit_main.fell_back), classic_interleaved=classic, warnings=tuple(warn),
+    return _Prepared(
+        n_qubits=n, interleaved=interleaved, label=label, gate=np.asarray(gate, dtype=complex), inter_gate=inter_gate,
+        solver=str(solver), bootstrap=int(bootstrap), seed=seed, control_variate=bool(control_variate),
+        models=bool(models), ranges=bool(ranges), diamond=bool(diamond), corr_ref=corr_ref, corr_int=corr_int,
+        dec_ref=dec_ref, dec_int=dec_int, obs_ref=obs_ref, obs_int=obs_int, obs_main=obs_main, fit_ref=fit_ref,
+        fit_main=fit_main, error_channel=err, anchor_weight=float(anchor_weight), warnings=tuple(warn),
+        ref_state=fitter._solver_state(), main_state=main_fitter._solver_state(),
         plan_fingerprint=str(plan.fingerprint), counts_fingerprint=str(counts.fingerprint),  # type: ignore[attr-defined]
+    )
+
+
+def _group_bounds(total: int, groups: int) -> list[tuple[int, int]]:
+    """``groups`` contiguous ``[start, stop)`` ranges covering ``0..total`` (empty ones dropped)."""
+    edges = np.linspace(0, total, max(1, min(int(groups), total)) + 1).round().astype(int) if total else [0]
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def _parts_for(*, bootstrap: int, models: bool, ranges: bool, diamond: bool, groups: int) -> list[tuple]:
+    """The independent parts of an analysis with these options, longest first.
+
+    ``("ranges", "profile")`` (with ranges and diamond), ``("ranges", "joint")`` (with ranges),
+    ``("point",)``, ``("models",)`` (with models) and ``("replicates", start, stop)`` for the
+    bootstrap replicates in ``groups`` contiguous groups.
+    """
+    parts: list[tuple] = []
+    if ranges:
+        if diamond:
+            parts.append(("ranges", "profile"))
+        parts.append(("ranges", "joint"))
+    parts.append(("point",))
+    if models:
+        parts.append(("models",))
+    parts += [("replicates", a, b) for a, b in _group_bounds(int(bootstrap), groups)]
+    return parts
+
+
+def _analysis_parts(prep: _Prepared, *, groups: int) -> list[tuple]:
+    """:func:`_parts_for` with the options of a prepared analysis."""
+    return _parts_for(bootstrap=prep.bootstrap, models=prep.models, ranges=prep.ranges, diamond=prep.diamond,
+                      groups=groups)
+
+
+def _replicate_group(prep: _Prepared, start: int, stop: int, *, tick=None) -> dict[str, np.ndarray]:
+    """Bootstrap replicates ``start .. stop - 1`` of one analysis, as plain arrays.
+
+    Replicate ``i`` uses the decay bootstrap's replicate ``i`` (its resampling depends only on
+    the seed and ``i``), re-fits the CPTP channel starting the solver from the point fit's
+    solution (``_Prepared.ref_state``, ``main_state``), re-anchors it and evaluates every figure.
+    So any split of ``0 .. bootstrap - 1`` into groups, computed in any processes, gives
+    bit-identical replicates; :func:`_merge_replicate_groups` puts them back together.
+
+    Returns
+    -------
+    dict of str to ndarray
+        ``"index"`` (k,) int64: the replicate numbers; ``"agf"``, ``"ef"``, ``"unitarity"``,
+        ``"coh"``, ``"dd"`` (k,) float (``dd`` NaN unless the replicates need it);
+        ``"pauli"`` (k, d*d) in the order of ``pauli_labels(n)``; ``"ham"``, ``"sto"``
+        (k, d*d - 1) in the order of ``pauli_labels(n)[1:]``; ``"block"`` (k, D, D) the
+        anchored replicates' unital blocks.  ``k = stop - start``.
+    """
+    if isinstance(start, bool) or isinstance(stop, bool) or not 0 <= int(start) < int(stop) <= prep.bootstrap:
+        raise ValueError(f"replicate group [{start}, {stop}) must lie within [0, {prep.bootstrap}) and be non-empty")
+    start, stop = int(start), int(stop)
+    dd_reps = prep.replicate_diamond
+    ident = prep.dec_ref._ident()
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        fitter = _fitter_for(prep.obs_ref, prep.solver)
+        fitter._restore_solver_state(prep.ref_state)  # type: ignore[attr-defined]
+        # the reference replicates' non-unital part is needed only when they are the answer
+        ref_b = fitter.fit_replicates(prep.dec_ref.bootstrap_lambdas[start:stop],  # type: ignore[attr-defined,index]
+                                      nonunital_rule=dd_reps and not prep.interleaved)
+        fits_b = ref_b
+        if prep.interleaved:
+            int_vals = prep.dec_int.bootstrap_lambdas[start:stop]  # type: ignore[union-attr,index]
+            moved = np.array([_gate_frame_values(prep.obs_int, fb.channel, prep.fit_ref.channel,  # type: ignore[arg-type,attr-defined]
+                                                 prep.inter_gate, v) for fb, v in zip(ref_b, int_vals)])
+            main = _fitter_for(prep.obs_main, prep.solver)
+            main._restore_solver_state(prep.main_state)  # type: ignore[attr-defined]
+            fits_b = main.fit_replicates(moved, nonunital_rule=dd_reps)  # type: ignore[attr-defined]
+        labels = _pauli.pauli_labels(prep.n_qubits)
+        rows = []
+        for j, fb in enumerate(fits_b):
+            target_b = float(prep.dec_main.bootstrap_lambdas[start + j, ident])  # type: ignore[index]
+            ch_b, _ = _anchor(fb.channel, _functional(prep.n_qubits, prep.inter_gate, ref_b[j].channel), target_b)
+            rows.append((_channel_figures(ch_b, diamond=dd_reps), ch_b.unital_block))
+            if tick is not None:
+                tick(j + 1, stop - start)
+    out: dict[str, np.ndarray] = {"index": np.arange(start, stop, dtype=np.int64)}
+    for key in ("agf", "ef", "unitarity", "coh", "dd"):
+        out[key] = np.array([r[key] for r, _ in rows], dtype=float)
+    out["pauli"] = np.array([[r["pauli"][k] for k in labels] for r, _ in rows], dtype=float)  # type: ignore[index]
+    for key in ("ham", "sto"):
+        out[key] = np.array([[r[key][k] for k in labels[1:]] for r, _ in rows], dtype=float)  # type: ignore[index]
+    out["block"] = np.array([b for _, b in rows], dtype=float)
+    return out
+
+
+def _merge_replicate_groups(groups: list[dict[str, np.ndarray]], total: int) -> dict[str, np.ndarray]:
+    """Concatenate replicate groups in replicate order; they must cover ``0 .. total - 1`` once."""
+    ordered = sorted(groups, key=lambda g: int(g["index"][0]) if g["index"].size else -1)
+    index = np.concatenate([g["index"] for g in ordered]) if ordered else np.zeros(0, dtype=np.int64)
+    if index.shape != (total,) or not np.array_equal(index, np.arange(total)):
+        raise ValueError(f"replicate groups must cover replicates 0..{total - 1} exactly once; "
+                         f"got {index.size} replicate(s)")
+    return {key: np.concatenate([g[key] for g in ordered]) for key in ordered[0]} if ordered else {}
+
+
+def _range_part(prep: _Prepared, which: str, tick=None) -> dict[str, object]:
+    """The ranges over one region, from a freshly built fitter (so from a fixed solver state).
+
+    ``"joint"``: non-unital ranges and the diamond-distance span over the joint 95% region;
+    ``"profile"``: the diamond distance's profile interval (region ``chi2 + 3.84``).
+    """
+    from robusttomo import reconstruct as rc
+
+    def step(k: int) -> None:
+        if tick is not None:
+            tick(k)
+
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        fitter = rc.CptpFitter(prep.obs_main, solver=prep.solver)
+        fit = prep.fit_main
+        if which == "joint":
+            nu = fitter.nonunital_range(fit, region=rc.Region.JOINT)  # type: ignore[arg-type]
+            step(1)
+            out: dict[str, object] = {"nonunital": np.column_stack([nu.minimum, nu.maximum])}
+            if prep.diamond:
+                dr = fitter.diamond_range(fit, nonunital=nu, region=rc.Region.JOINT,  # type: ignore[arg-type]
+                                          ascent_starts=1, ascent_steps=1)
+                out["span"] = DiamondSpan(float(dr.minimum), float(dr.maximum), bool(dr.max_is_bound), dr.method,
+                                          float(dr.maximum_attained), float(dr.maximum_certified))
+            step(2)
+            return out
+        if which == "profile":
+            nu_p = fitter.nonunital_range(fit, region=rc.Region.PROFILE)  # type: ignore[arg-type]
+            step(1)
+            dp = fitter.diamond_range(fit, nonunital=nu_p, region=rc.Region.PROFILE,  # type: ignore[arg-type]
+                                      maximum_rule=rc.MaximumRule.ATTAINED, ascent_starts=2, ascent_steps=2)
+            step(2)
+            return {"dd_profile": (float(dp.minimum), float(dp.maximum_attained))}
+    raise ValueError(f"range part must be 'joint' or 'profile'; got {which!r}")
+
+
+def _run_part(prep: _Prepared, part: tuple, tick=None) -> dict[str, object]:
+    """Run one part (see ``_analysis_parts``); ``tick(done, total)`` reports progress within it."""
+    kind = part[0]
+    if kind == "ranges":
+        return {"part": part, **_range_part(prep, part[1], None if tick is None else (lambda k: tick(k, 2)))}
+    if kind == "replicates":
+        return {"part": part, "arrays": _replicate_group(prep, part[1], part[2], tick=tick)}
+    if kind == "point":
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", RuntimeWarning)
+            return {"part": part, "figures": _channel_figures(prep.error_channel, diamond=prep.diamond)}
+    if kind == "models":
+        from robusttomo import models as mdl
+        from robusttomo import reconstruct as rc
+
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", RuntimeWarning)
+            summaries, chosen, mwarn = _model_summaries(
+                mdl, rc, prep.fit_main, prep.obs_main, prep.corr_ref, prep.corr_int, prep.control_variate,
+                prep.interleaved, prep.inter_gate, prep.solver)
+        return {"part": part, "summaries": tuple(summaries), "chosen": chosen, "warnings": tuple(mwarn)}
+    raise ValueError(f"unknown analysis part {part!r}")
+
+
+def _run_parts_here(prep: _Prepared, parts: list[tuple], tick) -> list[dict[str, object]]:
+    """Run the parts in this process, in the order (and with the progress) of a serial analysis."""
+    order = {"ranges": 0, "point": 1, "replicates": 2, "models": 3}
+    todo = sorted(parts, key=lambda p: (order[p[0]], p[1] != "joint" if p[0] == "ranges" else 0))
+    results = []
+    n_ranges = 2 * sum(p[0] == "ranges" for p in parts)
+    done_ranges = 0
+    if n_ranges:
+        tick("ranges", 0, n_ranges)
+    for part in todo:
+        if part[0] == "ranges":
+            base = done_ranges
+            results.append(_run_part(prep, part, lambda k, t, base=base: tick("ranges", base + k, n_ranges)))
+            done_ranges += 2
+        elif part[0] == "replicates":
+            start = part[1]
+            results.append(_run_part(prep, part, lambda k, t, start=start: tick("bootstrap", start + k,
+                                                                                prep.bootstrap)))
+        elif part[0] == "models":
+            tick("models", 0, 1)
+            results.append(_run_part(prep, part))
+            tick("models", 1, 1)
+        else:
+            results.append(_run_part(prep, part))
+    return results
+
+
+_POOL_PREP: _Prepared | None = None
+
+
+def _pool_init(prep: _Prepared) -> None:
+    # a forked worker also inherits the parent's cached fitters; _fitter_for finds them by digest
+    global _POOL_PREP
+    _POOL_PREP = prep
+
+
+def _pool_part(part: tuple) -> dict[str, object]:
+    if _POOL_PREP is None:
+        raise RuntimeError("analysis worker started without its prepared analysis")
+    return _run_part(_POOL_PREP, part)
+
+
+def _single_threaded() -> bool:
+    """Whether this process has exactly one (native) thread (Linux; False when unknown)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Threads:"):
+                    return int(line.split()[1]) == 1
+    except (OSError, ValueError):
+        pass
+    return False
+
+
+def _pool_context():
+    """Start method of the analysis workers.
+
+    ``fork`` (no start-up cost; the prepared analysis and the compiled programs are shared)
+    only while this process has a single thread: a solver's thread pool (Clarabel's, OpenBLAS
+    without ``OPENBLAS_NUM_THREADS=1``, a notebook kernel's threads) does not survive a fork, and
+    a worker waiting on it hangs (seen).  Otherwise ``forkserver`` with the analysis modules
+    preloaded (about 1.6 s once per process), or ``spawn``.
+    """
+    import multiprocessing
+
+    methods = multiprocessing.get_all_start_methods()
+    if "fork" in methods and _single_threaded():
+        return multiprocessing.get_context("fork")
+    if "forkserver" in methods:
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(["robusttomo.assess", "robusttomo.reconstruct", "robusttomo.models",
+                                    "robusttomo.metrics"])
+        return ctx
+    return multiprocessing.get_context("spawn")
+
+
+def _run_parts_pool(prep: _Prepared, parts: list[tuple], jobs: int, tick) -> list[dict[str, object]]:
+    """Run the parts on ``jobs`` local worker processes, longest first; progress as they finish."""
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    ctx = _pool_context()
+    n_ranges = sum(p[0] == "ranges" for p in parts)
+    done = {"ranges": 0, "bootstrap": 0}
+    if n_ranges:
+        tick("ranges", 0, 2 * n_ranges)
+    results = []
+    with ProcessPoolExecutor(max_workers=min(jobs, len(parts)), mp_context=ctx, initializer=_pool_init,
+                             initargs=(prep,)) as pool:
+        futures = [pool.submit(_pool_part, p) for p in parts]
+        for fut in as_completed(futures):
+            r = fut.result()
+            results.append(r)
+            part = r["part"]
+            if part[0] == "ranges":
+                done["ranges"] += 2
+                tick("ranges", done["ranges"], 2 * n_ranges)
+            elif part[0] == "replicates":
+                done["bootstrap"] += part[2] - part[1]
+                tick("bootstrap", done["bootstrap"], prep.bootstrap)
+            elif part[0] == "models":
+                tick("models", 1, 1)
+    return results
+
+
+def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Reconstruction:
+    """The Reconstruction from the prepared analysis and the results of all its parts."""
+    by_kind: dict[str, list[dict[str, object]]] = {}
+    for r in results:
+        by_kind.setdefault(r["part"][0], []).append(r)  # type: ignore[index]
+    n = prep.n_qubits
+    d = 2**n
+    d2m1 = d * d - 1
+    err = prep.error_channel
+    warn = list(prep.warnings)
+    ranges = {r["part"][1]: r for r in by_kind.get("ranges", [])}  # type: ignore[index]
+    dd_profile: tuple[float, float] | None = None
+    if prep.ranges:
+        nu_arr = np.asarray(ranges["joint"]["nonunital"])
+        if prep.diamond:
+            span = ranges["joint"]["span"]
+            dd_profile = ranges["profile"]["dd_profile"]  # type: ignore[assignment]
+        else:
+            span = DiamondSpan(float("nan"), float("nan"), True, "not computed (diamond=False)")
+    else:
+        nu_arr = np.full((d2m1, 2), np.nan)
+        span = DiamondSpan(float("nan"), float("nan"), True, "not computed (ranges=False)")
+    point = by_kind["point"][0]["figures"]
+    reps = (_merge_replicate_groups([r["arrays"] for r in by_kind.get("replicates", [])], prep.bootstrap)  # type: ignore[misc]
+            if prep.bootstrap > 0 else None)
+    labels = _pauli.pauli_labels(n)
+
+    def rep(key: str) -> np.ndarray | None:
+        return None if reps is None else reps[key]
+
+    def rep_col(key: str, lab: str, names: tuple[str, ...]) -> np.ndarray | None:
+        return None if reps is None else reps[key][:, names.index(lab)]
+
+    # fidelity from the identity decay(s) alone: the benchmarking number in reference mode,
+    # the classic interleaved estimate 1 - (d-1)(1 - p_int/p_ref)/d in interleaved mode
+    dec_ref, dec_main = prep.dec_ref, prep.dec_main
+    ident = dec_ref._ident()
+    p_main = float(dec_main.lambdas[ident])
+    p_rep = None if dec_main.bootstrap_lambdas is None else dec_main.bootstrap_lambdas[:, ident]
+    if prep.interleaved:
+        p_ref0 = float(dec_ref.lambdas[ident])
+        p_main = p_main / p_ref0
+        if p_rep is not None and dec_ref.bootstrap_lambdas is not None:
+            p_rep = p_rep / dec_ref.bootstrap_lambdas[:, ident]
+    dfid_value = 1 - (d - 1) * (1 - p_main) / d
+    dfid = 1 - (d - 1) * (1 - np.asarray(p_rep)) / d if p_rep is not None else None
+    figures = Figures(
+        average_gate_fidelity=_interval(point["agf"], rep("agf")),  # type: ignore[arg-type,index]
+        entanglement_fidelity=_interval(point["ef"], rep("ef")),  # type: ignore[arg-type,index]
+        diamond_distance=(_interval(point["dd"], rep("dd")) if dd_profile is None  # type: ignore[arg-type,index]
+                          else Interval(float(point["dd"]), *dd_profile)),  # type: ignore[index]
+        diamond_distance_range=span,  # type: ignore[arg-type]
+        unitarity=_interval(point["unitarity"], rep("unitarity")),  # type: ignore[arg-type,index]
+        coherent_share=_interval(point["coh"], rep("coh")),  # type: ignore[arg-type,index]
+        decay_fidelity=_interval(dfid_value, dfid),
+        pauli_error_rates={k: _interval(v, rep_col("pauli", k, labels))
+                           for k, v in point["pauli"].items()},  # type: ignore[index,union-attr]
+        hamiltonian={k: _interval(v, rep_col("ham", k, labels[1:]))
+                     for k, v in point["ham"].items()},  # type: ignore[index,union-attr]
+        stochastic={k: _interval(v, rep_col("sto", k, labels[1:]))
+                    for k, v in point["sto"].items()},  # type: ignore[index,union-attr]
+    )
+    summaries: tuple[ModelSummary, ...] = ()
+    chosen = "full"
+    if prep.models:
+        m = by_kind["models"][0]
+        summaries, chosen = m["summaries"], str(m["chosen"])  # type: ignore[assignment]
+        warn += list(m["warnings"])  # type: ignore[call-overload]
+    classic = _classic_interleaved(dec_ref, prep.dec_int, n) if prep.dec_int is not None else None
+    block_err = (float(np.sqrt(np.mean([np.sum((b - err.unital_block) ** 2) for b in reps["block"]])))
+                 if reps is not None else float("nan"))
+    fit_main = prep.fit_main
+    opts = {"bootstrap": prep.bootstrap, "seed": -1 if prep.seed is None else int(prep.seed),
+            "control_variate": prep.control_variate, "probes": f"{dec_ref.probes.n_probes} probes",
+            "solver": prep.solver}
+    return Reconstruction(
+        n_qubits=n, mode=AnalysisMode.INTERLEAVED if prep.interleaved else AnalysisMode.REFERENCE,
+        target_label=prep.label, target_unitary=np.asarray(prep.gate, dtype=complex), error_channel=err,
+        figures=figures, models=tuple(summaries), chosen_model=chosen, decays=dec_ref,
+        interleaved_decays=prep.dec_int, linear_unital_block=np.asarray(fit_main.linear_block),  # type: ignore[attr-defined]
+        constraint_distance=float(fit_main.linear_distance), nonunital_ranges=nu_arr,  # type: ignore[attr-defined]
+        solver=str(fit_main.solver), solver_status=str(fit_main.status.value),  # type: ignore[attr-defined]
+        solver_fell_back=bool(fit_main.fell_back), classic_interleaved=classic, warnings=tuple(warn),  # type: ignore[attr-defined]
+        plan_fingerprint=prep.plan_fingerprint, counts_fingerprint=prep.counts_fingerprint,
         options=opts, package_version=__version__, unital_block_error=block_err,
-        anchor_weight=anchor_weight, reference_channel=l_ref if interleaved else None,
+        anchor_weight=prep.anchor_weight, reference_channel=prep.fit_ref.channel if prep.interleaved else None,  # type: ignore[attr-defined]
     )
 
 
@@ -649,7 +1046,8 @@ def _validated_unitary(target: object, d: int) -> np.ndarray:
     return u
 
 
-def _model_summaries(mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_variate, interleaved, plan, solver):
+def _model_summaries(mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_variate, interleaved, inter_gate,
+                     solver):
     """Fit every model on the full data; choose by held-out prediction on a split of sequences."""
     from robusttomo import metrics
 
@@ -671,7 +1069,7 @@ def _model_summaries(mdl, rc, fit_main, obs_main, corr_ref, corr_int, control_va
             return dref.observations()
         lref = rc.fit_cptp(dref.observations(), solver=solver).channel
         dint = fit_decays(_subset(corr_int, parity), control_variate=control_variate, bootstrap=0)
-        return rc.gate_error_observations(dint.observations(), lref, plan.interleave.unitary)
+        return rc.gate_error_observations(dint.observations(), lref, inter_gate)
 
     full = fit_all(obs_main, fit_main)
     comp_full = mdl.compare_models(full)

@@ -6,7 +6,9 @@ label.  :func:`run_batch` analyses every job, writes one result file per job and
 summary (``summary.csv``, ``summary.json``, ``summary.html``, ``device.png``).
 
 Work unit = one job.  Locally the units run on a ``concurrent.futures`` process pool; with
-``cluster=ADDRESS`` on a running Dask distributed scheduler (the optional extra ``cluster``).
+``cluster=ADDRESS`` on a running Dask distributed scheduler (the optional extra ``cluster``),
+where a job can also be split so that groups of its bootstrap replicates (and its range
+programs and models) are work units of their own (``replicate_groups``).
 Workers receive loaded, validated inputs and return the result file's bytes, so a cluster
 needs no shared file system; the client writes every file atomically.
 
@@ -348,34 +350,94 @@ def _prepare(job: BatchJob, options: Mapping[str, object]) -> tuple[dict[str, ob
     return unit, key
 
 
+def _unit_inputs(unit: Mapping[str, object]) -> tuple[Any, Any]:
+    """The unit's plan and counts (simulated here when the job gives a device)."""
+    plan = unit["plan"]
+    counts = unit.get("counts")
+    if counts is None:
+        from robusttomo.simulate import load_device, simulate
+
+        with tempfile.TemporaryDirectory(prefix="robusttomo-batch-") as tmp:
+            dev_path = Path(tmp) / "device.json"
+            dev_path.write_text(str(unit["device_json"]), encoding="utf-8")
+            device = load_device(dev_path)
+        counts = simulate(plan, device, seed=unit["simulate_seed"])  # type: ignore[arg-type]
+    return plan, counts
+
+
+def _result_bytes(rec: Any) -> bytes:
+    from robusttomo.assess import save_reconstruction
+
+    with tempfile.TemporaryDirectory(prefix="robusttomo-batch-") as tmp:
+        out = Path(tmp) / "result.h5"
+        save_reconstruction(rec, out)
+        return out.read_bytes()
+
+
 def _run_unit(unit: Mapping[str, object]) -> dict[str, object]:
     """Worker side: simulate if asked, analyse, return the result file's bytes (or the error).
 
     Never raises for a job's own failure, so one bad job cannot cancel the others.
     """
     try:
-        from robusttomo.assess import analyze, save_reconstruction
+        from robusttomo.assess import analyze
 
-        plan = unit["plan"]
-        counts = unit.get("counts")
-        if counts is None:
-            from robusttomo.simulate import load_device, simulate
-
-            with tempfile.TemporaryDirectory(prefix="robusttomo-batch-") as tmp:
-                dev_path = Path(tmp) / "device.json"
-                dev_path.write_text(str(unit["device_json"]), encoding="utf-8")
-                device = load_device(dev_path)
-            counts = simulate(plan, device, seed=unit["simulate_seed"])  # type: ignore[arg-type]
+        plan, counts = _unit_inputs(unit)
         opts: Mapping[str, Any] = unit["options"]  # type: ignore[assignment]
         rec = analyze(plan, counts, bootstrap=opts["bootstrap"], seed=opts["seed"], models=opts["models"],
                       ranges=opts["ranges"], diamond=opts["diamond"], jobs=1)
-        with tempfile.TemporaryDirectory(prefix="robusttomo-batch-") as tmp:
-            out = Path(tmp) / "result.h5"
-            save_reconstruction(rec, out)
-            data = out.read_bytes()
-        return {"label": unit["label"], "ok": True, "data": data, "counts_fingerprint": counts.fingerprint}
+        return {"label": unit["label"], "ok": True, "data": _result_bytes(rec),
+                "counts_fingerprint": counts.fingerprint}
     except Exception as err:  # noqa: BLE001 - a job's failure is reported, not propagated
         return {"label": unit["label"], "ok": False, "error": _one_line(err)[:400]}
+
+
+# A job split into work units (Dask path with replicate groups): one "prepare" unit (inputs,
+# correlations, decays and their bootstrap, point fit), one unit per part of the analysis
+# (robusttomo.assess._parts_for: the two range families, the point figures, the models, and
+# each group of bootstrap replicates), and one "assemble" unit that merges them into the result
+# file.  Each part starts its solvers from a fixed state, so the file is the one analyze()
+# writes in one process.  None of these raises for the job's own failure either.
+def _unit_prepare(unit: Mapping[str, object]) -> dict[str, object]:
+    try:
+        from robusttomo.assess import _prepare_analysis
+
+        plan, counts = _unit_inputs(unit)
+        opts: Mapping[str, Any] = unit["options"]  # type: ignore[assignment]
+        prep = _prepare_analysis(plan, counts, target=None, reference=None, bootstrap=opts["bootstrap"],
+                                 seed=opts["seed"], probes=None, control_variate=True, models=opts["models"],
+                                 ranges=opts["ranges"], diamond=opts["diamond"], solver="SCS",
+                                 tick=lambda *a: None)
+        return {"ok": True, "prep": prep, "counts_fingerprint": counts.fingerprint}
+    except Exception as err:  # noqa: BLE001
+        return {"ok": False, "error": _one_line(err)[:400]}
+
+
+def _unit_part(prepared: Mapping[str, object], part: tuple) -> dict[str, object]:
+    if not prepared["ok"]:
+        return {"ok": False, "error": ""}
+    try:
+        from robusttomo.assess import _run_part
+
+        return {"ok": True, "result": _run_part(prepared["prep"], part)}  # type: ignore[arg-type]
+    except Exception as err:  # noqa: BLE001
+        return {"ok": False, "error": _one_line(err)[:400]}
+
+
+def _unit_assemble(label: str, prepared: Mapping[str, object], *parts: Mapping[str, object]) -> dict[str, object]:
+    if not prepared["ok"]:
+        return {"label": label, "ok": False, "error": prepared["error"]}
+    for p in parts:
+        if not p["ok"]:
+            return {"label": label, "ok": False, "error": p["error"]}
+    try:
+        from robusttomo.assess import _assemble_analysis
+
+        rec = _assemble_analysis(prepared["prep"], [p["result"] for p in parts])  # type: ignore[arg-type,misc]
+        return {"label": label, "ok": True, "data": _result_bytes(rec),
+                "counts_fingerprint": prepared["counts_fingerprint"]}
+    except Exception as err:  # noqa: BLE001
+        return {"label": label, "ok": False, "error": _one_line(err)[:400]}
 
 
 # ---- summary ----------------------------------------------------------------------------------
@@ -571,8 +633,21 @@ def _local_map(units: list[dict[str, object]], jobs: int) -> Any:
             yield fut.result()
 
 
-def _dask_map(units: list[dict[str, object]], address: str) -> Any:
-    """Yield unit results as they finish, on a running Dask distributed scheduler."""
+def _auto_groups(n_slots: int, n_units: int) -> int:
+    """Replicate groups per job when not given: spread the jobs over every worker slot."""
+    if n_units == 0 or n_slots <= n_units:
+        return 1
+    return -(-n_slots // n_units)
+
+
+def _dask_map(units: list[dict[str, object]], address: str, replicate_groups: int | None = None) -> Any:
+    """Yield unit results as they finish, on a running Dask distributed scheduler.
+
+    With one replicate group per job (``replicate_groups`` 1, or None on a cluster with no
+    more worker threads than jobs) a job is one task; otherwise each job becomes a small task
+    graph (``_unit_prepare`` -> parts -> ``_unit_assemble``) with its bootstrap replicates in
+    that many groups.
+    """
     try:
         from distributed import Client, as_completed
     except ImportError:
@@ -583,8 +658,27 @@ def _dask_map(units: list[dict[str, object]], address: str) -> Any:
         raise ValueError(f"'cluster': cannot reach a Dask scheduler at {address!r} ({_one_line(err)[:120]}); "
                          "start one with 'dask scheduler' and give its tcp://HOST:PORT") from None
     try:
-        futures = [client.submit(_run_unit, u, key=f"robusttomo-{u['label']}-{os.getpid()}-{time.time_ns()}",
-                                 pure=False) for u in units]
+        groups = replicate_groups
+        if groups is None:
+            slots = sum(int(w.get("nthreads", 1)) for w in client.scheduler_info()["workers"].values())
+            groups = _auto_groups(slots, len(units))
+        token = f"{os.getpid()}-{time.time_ns()}"
+        futures = []
+        for u in units:
+            opts: Mapping[str, Any] = u["options"]  # type: ignore[assignment]
+            if groups <= 1 or int(opts["bootstrap"]) < 2:
+                futures.append(client.submit(_run_unit, u, key=f"robusttomo-{u['label']}-{token}", pure=False))
+                continue
+            from robusttomo.assess import _parts_for
+
+            prep = client.submit(_unit_prepare, u, key=f"robusttomo-prepare-{u['label']}-{token}", pure=False)
+            parts = _parts_for(bootstrap=int(opts["bootstrap"]), models=bool(opts["models"]),
+                               ranges=bool(opts["ranges"]), diamond=bool(opts["diamond"]), groups=groups)
+            part_futures = [client.submit(_unit_part, prep, part, pure=False,
+                                          key=f"robusttomo-part-{u['label']}-{'-'.join(map(str, part))}-{token}")
+                            for part in parts]
+            futures.append(client.submit(_unit_assemble, u["label"], prep, *part_futures, pure=False,
+                                         key=f"robusttomo-{u['label']}-{token}"))
         with client.as_current():
             for fut in as_completed(futures):
                 yield fut.result()
@@ -594,6 +688,7 @@ def _dask_map(units: list[dict[str, object]], address: str) -> Any:
 
 def run_batch(manifest: BatchManifest | str | os.PathLike[str], directory: str | os.PathLike[str], *,
               jobs: int = 1, cluster: str | None = None, force: bool = False,
+              replicate_groups: int | None = None,
               progress: Callable[[str, int, int], None] | None = None) -> BatchResult:
     """Run every job of a manifest and write per-job results and the device summary.
 
@@ -617,6 +712,13 @@ def run_batch(manifest: BatchManifest | str | os.PathLike[str], directory: str |
         Recompute every job and overwrite its result.  Without it a job whose result and key
         exist and match is skipped, and a result whose key does not match is replaced
         (its inputs or options changed).
+    replicate_groups : int, optional
+        Cluster only: split each job's bootstrap replicates into this many groups, each a work
+        unit of its own (with the range programs, the point figures and the models as further
+        units; results are the same to the last digit).  1 keeps whole jobs as the units.
+        Default (None): whole jobs when the cluster has no more worker threads than jobs to
+        run, else ``ceil(threads / jobs)`` groups per job.  Locally the jobs are always the
+        units (a pool of ``jobs`` processes is kept busy by whole jobs).
     progress : callable, optional
         ``progress(stage, done, total)``.
 
@@ -630,6 +732,12 @@ def run_batch(manifest: BatchManifest | str | os.PathLike[str], directory: str |
         raise ValueError(f"'jobs' must be a positive integer; got {jobs!r}")
     if cluster is not None and (not isinstance(cluster, str) or not cluster):
         raise ValueError(f"'cluster' must be a scheduler address such as 'tcp://HOST:8786'; got {cluster!r}")
+    if replicate_groups is not None:
+        if isinstance(replicate_groups, bool) or not isinstance(replicate_groups, int) or replicate_groups < 1:
+            raise ValueError(f"'replicate_groups' must be a positive integer or None; got {replicate_groups!r}")
+        if cluster is None:
+            raise ValueError("'replicate_groups' applies to the cluster path only; give 'cluster' too, or drop "
+                             "it (locally whole jobs are the work units)")
     if not isinstance(manifest, BatchManifest):
         manifest = load_manifest(manifest)
     out = Path(directory)
@@ -657,7 +765,7 @@ def run_batch(manifest: BatchManifest | str | os.PathLike[str], directory: str |
     total = len(units)
     if progress is not None:
         progress("analyzing jobs", 0, total)
-    stream = _dask_map(units, cluster) if cluster is not None else _local_map(units, jobs)
+    stream = _dask_map(units, cluster, replicate_groups) if cluster is not None else _local_map(units, jobs)
     for done, r in enumerate(stream, 1):
         label = str(r["label"])
         job = by_label[label]

@@ -576,7 +576,8 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("-o", "--output", required=True, metavar="RESULT.h5")
     sp.add_argument("--bootstrap", type=int, default=200, help="bootstrap replicates (default 200; 0: no intervals)")
     sp.add_argument("--seed", type=int, help="seed of the bootstrap")
-    sp.add_argument("--jobs", type=int, default=1, help="worker processes for the bootstrap (default 1)")
+    sp.add_argument("--jobs", type=int, default=1,
+                    help="worker processes for the range programs, bootstrap re-fits and models (default 1)")
     sp.add_argument("--reference", nargs=2, metavar=("REF_PLAN.h5", "REF_COUNTS.h5"),
                     help="separate reference run for an interleaved plan without reference sequences")
     sp.add_argument("--require-fidelity", type=float, metavar="X",
@@ -627,7 +628,7 @@ def _cmd_batch(args: argparse.Namespace) -> int:
     prog = _progress(args)
     try:
         res = run_batch(manifest, args.output, jobs=args.jobs, cluster=args.cluster, force=args.force,
-                        progress=prog.callback)
+                        replicate_groups=args.replicate_groups, progress=prog.callback)
     finally:
         prog.close()
     counts = {s: sum(o.status is s for o in res.outcomes) for s in JobStatus}
@@ -669,6 +670,10 @@ def _add_batch_commands(add: Any) -> None:
                     help="local worker processes (default: number of CPUs)")
     sp.add_argument("--cluster", metavar="ADDRESS", help="run the jobs on a running Dask scheduler, e.g. "
                                                          "tcp://10.0.0.5:8786 (extra 'cluster')")
+    sp.add_argument("--replicate-groups", type=int, default=None, metavar="N",
+                    help="with --cluster: split each job's bootstrap replicates into N work units (1: whole "
+                         "jobs; default: automatic, ceil(worker threads / jobs) when the cluster has more "
+                         "threads than jobs)")
     _common(sp)
     sp.set_defaults(func=_cmd_batch)
 

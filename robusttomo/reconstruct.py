@@ -622,17 +622,41 @@ def _whiten(design: np.ndarray, cov: np.ndarray, ridge: float) -> _Whitened:
 
 
 # ---- solving -----------------------------------------------------------------------------------
+def _compile_once(problem: cp.Problem, solver: str) -> None:
+    """Compile ``problem`` for ``solver`` before its first solve, keeping its warm start.
+
+    cvxpy empties a problem's warm-start cache when it first compiles it, i.e. inside the
+    first solve.  A starting point set before that (``CptpFitter._restore_solver_state`` on a
+    freshly built fitter, as in a worker process) would be lost and the first replicate of a
+    group solved from a cold start, so its answer would depend on how the replicates were
+    split over processes (seen: last-digit differences).
+    """
+    done = problem.__dict__.setdefault("_robusttomo_compiled", set())
+    if solver not in done:
+        saved = dict(problem._solver_cache)
+        problem.get_problem_data(solver)
+        problem._solver_cache.update(saved)
+        done.add(solver)
+
+
 def _solve(problem: cp.Problem, solver: str, *, eps: float, scs_max_iters: int) -> tuple[bool, str]:
     """Run one solver; return (usable, note).  ``usable`` means the solver claims optimality."""
     if solver == "SCS":
+        # SCS starts from the problem's last optimal point (CptpFitter sets that point explicitly
+        # where the answer must not depend on what was solved before)
         opts = {"eps_abs": eps, "eps_rel": eps, "max_iters": scs_max_iters, "warm_start": True}
     else:
+        # a fresh interior-point solver every time: cvxpy would otherwise update a cached one,
+        # which keeps the scaling of the first data it saw, so answers would depend on history;
+        # one thread: answers do not depend on the machine's core count, and no solver thread
+        # pool exists that a forked worker process would inherit without its threads (deadlock)
         opts = {"tol_gap_abs": _CLARABEL_TOL, "tol_gap_rel": _CLARABEL_TOL, "tol_feas": _CLARABEL_TOL,
-                "max_iter": 500}
+                "max_iter": 500, "warm_start": False, "max_threads": 1}
     try:
         with warnings.catch_warnings():
             # an inaccurate solve is handled through the status and the certificate
             warnings.simplefilter("ignore")
+            _compile_once(problem, solver)
             problem.solve(solver=solver, **opts)
     except cp.error.SolverError as exc:
         return False, f"{solver} failed ({str(exc).splitlines()[0]})"
@@ -998,6 +1022,27 @@ class CptpFitter:
         """The observations this fitter was built for."""
         return self._obs
 
+    def _solver_state(self) -> dict[str, dict[str, np.ndarray]]:
+        """Copy of the SCS starting points of the fit and rule programs (plain arrays, picklable).
+
+        SCS warm-starts from ``x, y, s`` of a problem's last optimal solve; nothing else carries
+        over between solves (Clarabel always starts afresh, see ``_solve``).  Keys are
+        ``"fit"`` and ``"rule"``; a missing key means a cold start.
+        """
+        out: dict[str, dict[str, np.ndarray]] = {}
+        for name, problem in (("fit", self._fit_problems["SCS"]), ("rule", self._rule_problems["SCS"])):
+            cached = problem._solver_cache.get("SCS")
+            if cached is not None:
+                out[name] = {k: np.array(cached[k], dtype=float) for k in ("x", "y", "s")}
+        return out
+
+    def _restore_solver_state(self, state: dict[str, dict[str, np.ndarray]]) -> None:
+        """Make the next solves start exactly as after :meth:`_solver_state` was taken."""
+        for name, problem in (("fit", self._fit_problems["SCS"]), ("rule", self._rule_problems["SCS"])):
+            problem._solver_cache.pop("SCS", None)
+            if name in state:
+                problem._solver_cache["SCS"] = {k: np.array(v, dtype=float) for k, v in state[name].items()}
+
     def fit(self, values: np.ndarray | None = None, *, nonunital_rule: bool = True) -> ChannelFit:
         """Fit a CPTP channel to ``values`` (default: the observations' own values).
 
@@ -1072,6 +1117,11 @@ class CptpFitter:
     ) -> tuple[ChannelFit, ...]:
         """Fit every bootstrap replicate with the already-built problems (warm-started).
 
+        Every replicate starts the solver from the same point, the one the fitter held when the
+        call began (normally the point estimate's solution, after :meth:`fit`), and the fitter is
+        left in that state afterwards.  So replicate ``i``'s fit depends only on its own values:
+        any split of the replicates over calls or processes gives bit-identical fits.
+
         Parameters
         ----------
         replicates : ndarray, shape (B, k), float, or None
@@ -1093,7 +1143,15 @@ class CptpFitter:
         if reps.ndim != 2 or reps.shape[1] != k or reps.shape[0] == 0 or not np.all(np.isfinite(reps)):
             raise ValueError(f"'replicates' must be a finite array of shape (B, {k}) with B >= 1; got shape {reps.shape}")
         rule = _check_bool("nonunital_rule", nonunital_rule)
-        return tuple(self._fit(np.asarray(row, dtype=float), rule) for row in reps)
+        state = self._solver_state()
+        out = []
+        try:
+            for row in reps:
+                self._restore_solver_state(state)
+                out.append(self._fit(np.asarray(row, dtype=float), rule))
+        finally:
+            self._restore_solver_state(state)
+        return tuple(out)
 
     # ---- ranges ---------------------------------------------------------------------------------
     def _delta(self, level: object, region: object) -> tuple[float, float, Region]:
@@ -1344,13 +1402,21 @@ class CptpFitter:
         target_emb = _embed(target_channel.choi)
         notes: list[str] = []
 
+        evaluated: dict[bytes, float] = {}
+
         def evaluate(ch: Channel) -> float:
+            # the estimate and the minimizer are also candidates: the evaluation is deterministic
+            # (a cold solve of the same program), so a repeat would return the same number
+            key = np.ascontiguousarray(ch.ptm).tobytes()
+            if key in evaluated:
+                return evaluated[key]
             res = diamond_distance_details(ch, u)
             if not np.isfinite(res.value):
                 raise SolverError(f"diamond distance evaluation failed: {res.message}")
             if res.fell_back:
                 notes.append(f"evaluation: {res.message}")
-            return float(res.value)
+            evaluated[key] = float(res.value)
+            return evaluated[key]
 
         def x_of(ch: Channel) -> np.ndarray:
             r = ch.ptm

@@ -178,6 +178,11 @@ def test_cli_batch_exit_status_and_json(device_run, capsys):
     assert "job q12 failed" in captured.err and "broken.h5" in captured.err
     assert main(["batch", str(root / "missing.json"), "-o", str(root / "x")]) == 2
     assert "no such manifest file" in capsys.readouterr().err
+    # replicate groups are work units of the cluster path only: a one-line refusal, nothing written
+    assert main(["batch", str(manifest), "-o", str(root / "groups"), "--replicate-groups", "2"]) == 2
+    err = capsys.readouterr().err
+    assert "replicate_groups" in err and "cluster" in err and len(err.strip().splitlines()) == 1
+    assert not (root / "groups").exists()
 
 
 # ---- manifest validation --------------------------------------------------------------------
