@@ -8,7 +8,6 @@ The result, a frozen :class:`Reconstruction`, saves to and loads from HDF5.
 
 from __future__ import annotations
 
-import copyreg
 import dataclasses as _dc
 import enum
 import warnings as _warnings
@@ -494,14 +493,6 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
 # solution for every replicate), so the assembled result is the same however the parts are
 # distributed (robusttomo.batch sends them to Dask workers).
 
-def _reduce_channel(ch: Channel) -> tuple:
-    return (Channel, (np.array(ch.ptm),))
-
-
-# Channel's immutability (__slots__ with a refusing __setattr__) defeats pickle's default
-# reconstruction; a prepared analysis travels to worker processes (forkserver, Dask) by pickle.
-# Rebuilding from the PTM restores the same bits (a Channel is its PTM).
-copyreg.pickle(Channel, _reduce_channel)
 
 #: Groups of bootstrap replicates per worker process in analyze(jobs > 1): enough to balance
 #: the load against the two long range parts, few enough that each group is seconds of work.

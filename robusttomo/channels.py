@@ -87,6 +87,11 @@ class Channel:
     def __setattr__(self, key: str, value: object) -> None:
         raise AttributeError("Channel is immutable")
 
+    def __reduce__(self) -> tuple:
+        # The refusing __setattr__ defeats the default reconstruction by copy and by the
+        # inter-process transport of worker pools; a channel is its PTM, so rebuild from it.
+        return (Channel, (np.array(self._ptm),))
+
     # ---- constructors -------------------------------------------------------------------
     @classmethod
     def from_ptm(cls, ptm: np.ndarray) -> Channel:

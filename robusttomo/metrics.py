@@ -386,8 +386,9 @@ def _solve_once(problem: cp.Problem, solver: str, *, scs_max_iters: int) -> tupl
         opts = {"eps_abs": _SCS_EPS, "eps_rel": _SCS_EPS, "max_iters": scs_max_iters}
     else:
         # Clarabel (interior point) reaches 1e-8 in ~15 iterations; asking for 1e-9 often ends
-        # "almost solved" with the same value
-        opts = {"tol_gap_abs": 1e-8, "tol_gap_rel": 1e-8, "tol_feas": 1e-8}
+        # "almost solved" with the same value.  One thread: answers do not depend on the core
+        # count, and a forked worker never inherits a solver thread pool without its threads.
+        opts = {"tol_gap_abs": 1e-8, "tol_gap_rel": 1e-8, "tol_feas": 1e-8, "max_threads": 1}
     try:
         with warnings.catch_warnings():
             # an inaccurate solve is reported through the status, not a warning

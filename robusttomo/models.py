@@ -835,7 +835,8 @@ def _simplex_least_squares(a: np.ndarray, rhs: np.ndarray) -> np.ndarray:
 
     x = cvxpy.Variable(a.shape[1])
     prob = cvxpy.Problem(cvxpy.Minimize(cvxpy.sum_squares(a @ x - rhs)), [x >= 0, cvxpy.sum(x) <= 1])
-    prob.solve(solver=cvxpy.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12, tol_feas=1e-12)
+    prob.solve(solver=cvxpy.CLARABEL, tol_gap_abs=1e-12, tol_gap_rel=1e-12, tol_feas=1e-12,
+               max_threads=1)  # one thread: core-count independent, safe in forked workers
     if x.value is None:
         raise RuntimeError(f"the Pauli-channel fit's quadratic program failed (solver status {prob.status!r})")
     p = np.clip(np.asarray(x.value, dtype=float), 0.0, 1.0)

@@ -377,3 +377,17 @@ def test_docstring_examples_run():
     result = doctest.testmod(channels_module, verbose=False)
     assert result.attempted >= 1
     assert result.failed == 0
+
+
+def test_channel_survives_copy_and_process_transport():
+    # worker pools and Dask move channels between processes by the standard library's
+    # serializer; the copy must hold the same bits and stay immutable
+    import copy
+    import pickle
+
+    ch = random_channel(2, 0.1, rng=np.random.default_rng(11))
+    for other in (copy.deepcopy(ch), pickle.loads(pickle.dumps(ch))):
+        assert np.array_equal(other.ptm, ch.ptm) and other.n_qubits == 2
+        assert not other.ptm.flags.writeable
+        with pytest.raises(AttributeError, match="immutable"):
+            other._ptm = None
