@@ -21,6 +21,28 @@ and the text between ``<!-- study:begin -->`` and ``<!-- study:end -->`` in
 ``docs/benchmarks.md`` (appended if the markers are missing).  Everything else in that file is
 left exactly as it was.  ``--size smoke`` is the smallest configuration, used by the test suite
 (with ``--docs`` pointing at a temporary directory).
+
+Long runs, in pieces.  ``--only`` also takes sub-studies (``accuracy.side``,
+``accuracy.cross``, ``coverage.coverage``, ``coverage.weights``, ``coverage.remedy``,
+``coverage.gate``); a
+sub-study not named keeps
+its stored result.  ``--raw DIR`` keeps a checkpoint file per sub-study in ``DIR`` (one JSON
+line per finished repeat, see ``study_common.run_tasks``): an interrupted run resumes where it
+stopped, and repeats computed by another process or another copy of the code merge.  The
+full study is run that way from a read-only snapshot of the committed code (so that edits
+other engineers make meanwhile cannot leak into a run)::
+
+    git -C REPO archive HEAD | tar -x -C SNAP     # plus the benchmark scripts of the working tree
+    cd SNAP && STUDY_CODE_VERSION=<commit> PYTHONPATH=SNAP \
+        python benchmarks/run_all.py --full --only coverage.coverage --raw RAW --docs SCRATCH_DOCS
+
+and the repository's docs are then regenerated from the saved repeats, without computing
+anything (``--summarize``: only repeats already in ``RAW`` are used, and the tables say how
+many of the planned ones that is)::
+
+    python benchmarks/run_all.py --full --only coverage accuracy.side --raw RAW --summarize
+
+Every repeat records the code it ran on (``code`` in the results: the snapshot's commit).
 """
 
 from __future__ import annotations
@@ -61,6 +83,25 @@ SCRIPT_SKIP_SMALL: dict[str, str] = {
 SCRIPT_TIMEOUT_SMALL_S = 120.0
 
 STUDIES = ("scripts", "accuracy", "coverage", "speed")
+#: Sub-studies of the studies that have them (``--only accuracy.side``).
+SUBSTUDIES: dict[str, tuple[str, ...]] = {"accuracy": ("side", "cross"), "coverage": ("coverage", "weights", "remedy", "gate")}
+CHOICES = STUDIES + tuple(f"{k}.{v}" for k, vs in SUBSTUDIES.items() for v in vs)
+
+
+def _parse_only(only: tuple[str, ...]) -> dict[str, tuple[str, ...]]:
+    """``("accuracy.side", "coverage")`` -> ``{"accuracy": ("side",), "coverage": ("coverage", "gate")}``."""
+    bad = [o for o in only if o not in CHOICES]
+    if bad:
+        raise ValueError(f"'studies' must be among {list(CHOICES)}; got {bad}")
+    out: dict[str, list[str]] = {}
+    for o in only:
+        study, _, sub = o.partition(".")
+        subs = SUBSTUDIES.get(study, ())
+        have = out.setdefault(study, [])
+        for x in ((sub,) if sub else subs):
+            if x not in have:
+                have.append(x)
+    return {k: tuple(sorted(v, key=SUBSTUDIES.get(k, ()).index)) if k in SUBSTUDIES else () for k, v in out.items()}
 
 
 def _command(size: str) -> str:
@@ -160,9 +201,15 @@ def size_markdown(entry: dict) -> str:
                   f"`{_command(size)} --only <part>` (same code and configuration, one process each); "
                   "raw numbers: `docs/benchmarks-results.json`, key "
                   f"`{size}`.", ""]
-    lines += ["Parts: " + "; ".join(
-        f"{k} finished {v['finished']} ({sc.fmt(v['wall_s'])} s, `--jobs {v['jobs']}`, load average at the start "
-        f"{v['machine']['load_average'][0]})" for k, v in parts.items()) + ".", ""]
+    def how(k: str, v: dict) -> str:
+        if v.get("summarized"):
+            return (f"{k} regenerated {v['finished']} from saved repeats (`{v['command']}`; the repeats' own "
+                    "times, load and code are in its tables)")
+        cmd = f", `{v['command']}`" if v.get("command") else ""
+        return (f"{k} finished {v['finished']} ({sc.fmt(v['wall_s'])} s, `--jobs {v['jobs']}`, load average at the "
+                f"start {v['machine']['load_average'][0]}{cmd})")
+
+    lines += ["Parts: " + "; ".join(how(k, v) for k, v in parts.items()) + ".", ""]
     if size == "small":
         lines += ["The small size is a quick check that everything runs and a rough preview: few repeats, "
                   "few bootstrap replicates. Verdicts below are those of this run; the full study is the "
@@ -195,18 +242,38 @@ INTRO = ["## Validation study (`benchmarks/run_all.py`)", "",
          "`benchmarks/study_accuracy.py` (accuracy per shot against conventional tomography and "
          "standard benchmarking, crossover budget), `benchmarks/study_coverage.py` (interval coverage, "
          "gate-dependent noise), `benchmarks/study_speed.py` (speed, scaling, numpy floor); shared "
-         "settings in `benchmarks/study_common.py`. Each script's docstring gives its method in full.", ""]
+         "settings in `benchmarks/study_common.py`. Each script's docstring gives its method in full. "
+         "Long full-size parts run in pieces from a read-only snapshot of the committed code, saving every "
+         "finished repeat to a checkpoint directory (`--raw`); the tables here are then regenerated from "
+         "the saved repeats with `--summarize` (see `run_all.py`'s docstring), and each table says which "
+         "code its repeats ran on and how many of the planned repeats finished.", ""]
 
 
-def run(size: str, *, jobs: int, docs: Path, studies: tuple[str, ...] = STUDIES) -> dict:
+def _previous(entry: dict, name: str) -> dict | None:
+    """The stored results of a study, each sub-study stamped with when it was measured."""
+    part = entry["parts"].get(name)
+    if not part:
+        return None
+    res = dict(part["results"])
+    for k, v in res.items():
+        if isinstance(v, dict):
+            res[k] = {**v, "finished": v.get("finished") or part["finished"]}
+    return res
+
+
+def run(size: str, *, jobs: int, docs: Path, studies: tuple[str, ...] = STUDIES, raw: Path | None = None,
+        summarize: bool = False, qubits: tuple[int, ...] | None = None, command: str = "") -> dict:
     """Run the studies, write JSON, figures and the markdown block; return this run's entry.
 
-    The stored entry of ``size`` keeps the parts not run this time (``--only``).
+    The stored entry of ``size`` keeps the parts not run this time (``--only``), and a study
+    run in part keeps its other sub-studies.  ``raw``: checkpoint directory (see the module
+    docstring); ``summarize``: run no new coverage repeat, use those in ``raw``; ``qubits``:
+    run new coverage repeats only for these qubit counts.
     """
     sc.check_size(size)
-    unknown = [s for s in studies if s not in STUDIES]
-    if unknown:
-        raise ValueError(f"'studies' must be among {list(STUDIES)}; got {unknown}")
+    only = _parse_only(tuple(studies))
+    if summarize and raw is None:
+        raise ValueError("'summarize' needs 'raw', the directory holding the saved repeats")
     docs = Path(docs)
     figdir = docs / "figures"
     figdir.mkdir(parents=True, exist_ok=True)
@@ -216,9 +283,15 @@ def run(size: str, *, jobs: int, docs: Path, studies: tuple[str, ...] = STUDIES)
     entry.setdefault("parts", {})
     machine = sc.machine()
     t0 = time.perf_counter()
-    todo = [s for s in STUDIES if s in studies and not (s == "scripts" and size == "smoke")]
-    fns = {"scripts": lambda: run_scripts(size, jobs=jobs), "accuracy": lambda: study_accuracy.run(size, jobs=jobs),
-           "coverage": lambda: study_coverage.run(size, jobs=jobs), "speed": lambda: study_speed.run(size)}
+    todo = [s for s in STUDIES if s in only and not (s == "scripts" and size == "smoke")]
+    fns = {"scripts": lambda: run_scripts(size, jobs=jobs),
+           "accuracy": lambda: study_accuracy.run(size, jobs=jobs, subparts=only["accuracy"],
+                                                  previous=_previous(entry, "accuracy"), raw=raw,
+                                                  run_missing=not summarize),
+           "coverage": lambda: study_coverage.run(size, jobs=jobs, subparts=only["coverage"],
+                                                  previous=_previous(entry, "coverage"), raw=raw,
+                                                  run_missing=not summarize, qubits=qubits),
+           "speed": lambda: study_speed.run(size)}
     for name in todo:
         s0 = time.perf_counter()
         result = fns[name]()
@@ -228,11 +301,13 @@ def run(size: str, *, jobs: int, docs: Path, studies: tuple[str, ...] = STUDIES)
                 result, figdir, rel="figures", suffix=f"_{size}")
         entry["parts"][name] = {"results": result, "wall_s": wall, "jobs": jobs, "machine": machine,
                                 "finished": datetime.datetime.now().strftime("%Y-%m-%d %H:%M"),
+                                "command": command, "summarized": bool(summarize and name in SUBSTUDIES),
                                 "markdown": _part_markdown(name, result, figures),
                                 "targets": _target_rows(name, result) if name != "scripts" else []}
         print(f"[run_all] {name} done in {wall:.1f} s", flush=True)
     wall_s = time.perf_counter() - t0
-    if len(todo) == len([s for s in STUDIES if not (s == "scripts" and size == "smoke")]):
+    whole = all(only.get(s) == SUBSTUDIES.get(s, ()) for s in todo)
+    if whole and not summarize and len(todo) == len([s for s in STUDIES if not (s == "scripts" and size == "smoke")]):
         entry["complete_run"] = {"wall_s": wall_s, "jobs": jobs, "machine": machine,
                                  "finished": datetime.datetime.now().strftime("%Y-%m-%d %H:%M")}
     entry["markdown"] = size_markdown(entry)
@@ -250,8 +325,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--size", choices=sc.SIZES, default=None, help="smoke, small (default) or full")
     ap.add_argument("--jobs", type=int, default=2, help="worker processes for independent repeats (default 2)")
     ap.add_argument("--docs", type=Path, default=sc.ROOT / "docs", help="docs directory to regenerate")
-    ap.add_argument("--only", nargs="+", choices=STUDIES, default=list(STUDIES), help="run only these parts")
+    ap.add_argument("--only", nargs="+", choices=CHOICES, default=list(STUDIES),
+                    help="run only these parts or sub-studies (e.g. accuracy.side)")
+    ap.add_argument("--raw", type=Path, default=None,
+                    help="checkpoint directory: resume interrupted runs, merge repeats computed elsewhere")
+    ap.add_argument("--summarize", action="store_true",
+                    help="compute no new repeat: regenerate from the repeats saved in --raw")
+    ap.add_argument("--qubits", type=int, nargs="+", default=None,
+                    help="run new coverage repeats only for these qubit counts (the others: only from --raw)")
     args = ap.parse_args(argv)
+    if args.summarize and args.raw is None:
+        ap.error("--summarize needs --raw, the directory of saved repeats")
+    if args.raw is not None:
+        args.raw.mkdir(parents=True, exist_ok=True)
     if args.full and args.size not in (None, "full"):
         ap.error(f"--full contradicts --size {args.size}")
     size = "full" if args.full else (args.size or "small")
@@ -259,7 +345,10 @@ def main(argv: list[str] | None = None) -> int:
         ap.error(f"--jobs must be a positive integer; got {args.jobs}")
     if not args.docs.is_dir():
         ap.error(f"--docs must be an existing directory; got {args.docs}")
-    res = run(size, jobs=args.jobs, docs=args.docs, studies=tuple(args.only))
+    command = "python benchmarks/run_all.py " + " ".join(argv if argv is not None else sys.argv[1:])
+    res = run(size, jobs=args.jobs, docs=args.docs, studies=tuple(args.only), raw=args.raw,
+              summarize=args.summarize, qubits=None if args.qubits is None else tuple(args.qubits),
+              command=command.strip())
     print(f"[run_all] {size} run finished in {res['wall_s']:.1f} s; wrote {args.docs / 'benchmarks.md'}",
           flush=True)
     return 0

@@ -89,12 +89,37 @@ def split_sequences(total: int, lengths: Sequence[int]) -> list[int]:
     The proportions of the package's default plans (``robusttomo.plan``: 200/50 for one
     qubit, 500/100 for two), scaled to a total.
     """
-    w = np.array([5.0 if m <= 3 else 1.0 for m in lengths])
-    raw = total * w / w.sum()
-    out = np.floor(raw).astype(int)
-    for i in np.argsort(-(raw - out))[: total - int(out.sum())]:
-        out[i] += 1
-    return [max(int(v), 2) for v in out]
+    return allocate(total, [5.0 if m <= 3 else 1.0 for m in lengths])
+
+
+def allocate(total: int, weights: Sequence[float], *, floor: int = 2) -> list[int]:
+    """``total`` split in proportion to ``weights`` (largest remainders), at least ``floor`` each.
+
+    Entries whose share falls below ``floor`` are set to ``floor`` and the rest of ``total``
+    is split among the others in proportion to their weights (repeated until none falls
+    below).  The sum is ``total`` unless ``floor`` times the number of entries exceeds it.
+    """
+    w = np.asarray(weights, dtype=float)
+    if w.ndim != 1 or w.size == 0 or not np.all(w >= 0) or w.sum() <= 0:
+        raise ValueError(f"'weights' must be non-negative with a positive sum; got {list(weights)}")
+    fixed = np.zeros(w.size, dtype=bool)
+    while True:
+        free = ~fixed
+        left = total - floor * int(fixed.sum())
+        raw = np.zeros(w.size)
+        if free.any() and w[free].sum() > 0:
+            raw[free] = max(left, 0) * w[free] / w[free].sum()
+        low = free & (raw < floor)
+        if not low.any():
+            break
+        fixed |= low
+    out = np.where(fixed, floor, np.floor(raw)).astype(int)
+    short = total - int(out.sum())
+    rem = np.where(fixed, -1.0, raw - np.floor(raw))
+    for i in np.argsort(-rem)[: max(short, 0)]:
+        if not fixed[i]:
+            out[i] += 1
+    return [max(int(v), floor) for v in out]
 
 
 # ---- measurement helpers ---------------------------------------------------------------------
@@ -215,20 +240,39 @@ def verdict(ok: object) -> str:
 
 
 # ---- output ----------------------------------------------------------------------------------
-def _jsonable(x: object) -> object:
+def _jsonable(x: object, *, keep_nan: bool = False) -> object:
     if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
+        return {str(k): _jsonable(v, keep_nan=keep_nan) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
+        return [_jsonable(v, keep_nan=keep_nan) for v in x]
     if isinstance(x, np.ndarray):
-        return _jsonable(x.tolist())
+        return _jsonable(x.tolist(), keep_nan=keep_nan)
     if isinstance(x, (np.bool_, bool)):
         return bool(x)
     if isinstance(x, (np.integer,)):
         return int(x)
     if isinstance(x, (float, np.floating)):
         v = float(x)
-        return v if math.isfinite(v) else None  # JSON has no nan/inf
+        return v if (keep_nan or math.isfinite(v)) else None  # JSON has no nan/inf
+    return x
+
+
+#: Keys whose ``None`` means "not applicable" rather than a number that was not finite.
+_NONE_KEYS = frozenset({"covered", "met"})
+
+
+def revive(x: object, _key: str | None = None) -> object:
+    """Undo :func:`write_json`'s ``nan -> null`` on results read back from the JSON store.
+
+    Every ``null`` becomes ``nan`` except under the keys of :data:`_NONE_KEYS`, where ``None``
+    is a value of its own ("not computed").  Used when a stored sub-study is re-rendered.
+    """
+    if isinstance(x, dict):
+        return {k: revive(v, k) for k, v in x.items()}
+    if isinstance(x, list):
+        return [revive(v, _key) for v in x]
+    if x is None and _key not in _NONE_KEYS:
+        return float("nan")
     return x
 
 
@@ -264,20 +308,115 @@ def pyplot():
 
 
 # ---- running independent repeats -------------------------------------------------------------
-def run_tasks(fn: Callable[[dict], dict], tasks: Sequence[dict], *, jobs: int = 1) -> list[dict]:
+def code_version() -> str:
+    """Which package code produced a result.
+
+    ``STUDY_CODE_VERSION`` if set (long runs go from a snapshot outside the repository, and
+    its launcher names the commit there); otherwise the repository's ``git`` commit, with
+    ``+local`` when ``robusttomo/`` has uncommitted changes.  Read-only ``git`` queries only.
+    """
+    import subprocess
+
+    env = os.environ.get("STUDY_CODE_VERSION")
+    if env:
+        return env
+    try:
+        head = subprocess.run(["git", "-C", str(ROOT), "rev-parse", "--short", "HEAD"], capture_output=True,
+                              text=True, timeout=20).stdout.strip()
+        dirty = subprocess.run(["git", "-C", str(ROOT), "status", "--porcelain", "--", "robusttomo"],
+                               capture_output=True, text=True, timeout=20).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        return "unknown"
+    return (head or "unknown") + ("+local" if dirty else "")
+
+
+def task_key(task: dict) -> str:
+    """Canonical text of a task dict: the identity of one repeat in a checkpoint file."""
+    return json.dumps(_jsonable(task, keep_nan=True), sort_keys=True)
+
+
+def load_checkpoint(path: Path) -> dict[str, dict]:
+    """Records of a checkpoint file by task key (later records of a key win).
+
+    One JSON object per line, ``{"key", "task", "result", "finished"}``.  A last line cut
+    short by an interrupted run is skipped (its task simply runs again).
+    """
+    path = Path(path)
+    out: dict[str, dict] = {}
+    if not path.exists():
+        return out
+    lines = path.read_text(encoding="utf-8").splitlines()
+    for k, line in enumerate(lines):
+        if not line.strip():
+            continue
+        try:
+            rec = json.loads(line)
+        except json.JSONDecodeError:
+            if k == len(lines) - 1:
+                continue
+            raise ValueError(f"checkpoint {path}: line {k + 1} is not JSON; remove the line or the file") from None
+        out[rec["key"]] = rec
+    return out
+
+
+def _append_record(path: Path, key: str, task: dict, result: dict) -> None:
+    # Append-only, one line per finished repeat in a single write() on an O_APPEND descriptor:
+    # an interrupted run loses at most the line being written, and two processes resuming the
+    # same study (e.g. one per qubit count) append whole lines without interleaving them.
+    line = json.dumps(_jsonable({"key": key, "task": task, "result": result,
+                                 "finished": time.strftime("%Y-%m-%d %H:%M:%S")}, keep_nan=True))
+    data = (line + "\n").encode("utf-8")
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        if os.write(fd, data) != len(data):
+            raise OSError(f"checkpoint {path}: short write")
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def run_tasks(fn: Callable[[dict], dict], tasks: Sequence[dict], *, jobs: int = 1,
+              checkpoint: Path | None = None, run_missing: bool = True) -> list[dict]:
     """``[fn(t) for t in tasks]``, optionally over ``jobs`` worker processes (same order).
 
     Each task is independent and seeds its own generators, so the results do not depend on
     ``jobs``.  Workers are started with "spawn" (a fresh interpreter each): forking a process
     that already runs threads (solvers, an earlier pool) left workers deadlocked on an
     inherited lock.  They inherit the environment, so the one-thread BLAS setting holds.
+
+    With ``checkpoint`` (a JSON-lines file, see :func:`load_checkpoint`) every finished task is
+    appended to the file as soon as it finishes, and tasks already recorded there are not run
+    again: an interrupted study resumes, and parts run elsewhere (another process, another
+    copy of the code) merge.  With ``run_missing=False`` nothing runs: the result holds only
+    the recorded tasks, so the list can be shorter than ``tasks`` (a partial study).
     """
     if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
         raise ValueError(f"'jobs' must be a positive integer; got {jobs!r}")
-    if jobs == 1 or len(tasks) <= 1:
-        return [fn(t) for t in tasks]
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
+    keys = [task_key(t) for t in tasks]
+    done = {} if checkpoint is None else load_checkpoint(Path(checkpoint))
+    todo = [i for i, k in enumerate(keys) if k not in done] if run_missing else []
+    results: dict[int, dict] = {}
 
-    with ProcessPoolExecutor(max_workers=jobs, mp_context=multiprocessing.get_context("spawn")) as ex:
-        return list(ex.map(fn, tasks))
+    def record(i: int, res: dict) -> None:
+        results[i] = res
+        if checkpoint is not None:
+            _append_record(Path(checkpoint), keys[i], tasks[i], res)
+
+    if jobs == 1 or len(todo) <= 1:
+        for i in todo:
+            record(i, fn(tasks[i]))
+    else:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor, as_completed
+
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=multiprocessing.get_context("spawn")) as ex:
+            futures = {ex.submit(fn, tasks[i]): i for i in todo}
+            for fut in as_completed(futures):
+                record(futures[fut], fut.result())
+    out = []
+    for i, k in enumerate(keys):
+        if i in results:
+            out.append(results[i])
+        elif k in done:
+            out.append(done[k]["result"])
+    return out

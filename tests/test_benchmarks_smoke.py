@@ -70,12 +70,15 @@ def test_smoke_numbers_are_measurements(smoke_run):
     assert side["readout"] == 0.03
     assert 0.02 < side["tomography"]["mean_infidelity_error"] < 0.04
     # every method got the same budget (to the rounding of each method's split)
-    shots = [side[m]["shots"] for m in ("ours", "tomography", "benchmarking")]
+    shots = [side[m]["shots"] for m in ("ours", "ours_fid", "tomography", "benchmarking")]
     assert max(shots) - min(shots) <= 0.01 * max(shots)
     g = res["speed"]["grid"][0]
     assert g["correlations_s"] > 0 and g["floor_s"] > 0 and g["peak_traced_mb"] > 0
     cov = res["coverage"]["coverage"]["rows"][0]
-    assert cov["agf"]["trials"] == 2 and 0 <= cov["agf"]["hits"] <= 2
+    assert cov["agf"]["trials"] == 3 and 0 <= cov["agf"]["hits"] <= 3
+    assert res["coverage"]["weights"]["rows"][0]["experiments"] == 3
+    rem = res["coverage"]["remedy"]["rows"][0]
+    assert rem["experiments"] == 3 and all(0 <= rem[k]["hits"] <= 3 for k in study_coverage.REMEDIES)
 
 
 def test_per_clifford_errors_reproduce_the_simulator():
@@ -155,3 +158,160 @@ def test_bad_size_names_the_value():
         study_common.check_size("huge")
     with pytest.raises(ValueError, match=r"'jobs' must be a positive integer; got 0"):
         study_common.run_tasks(math.sqrt, [], jobs=0)
+
+
+def _square(t: dict) -> dict:
+    return {"x": t["x"], "y": t["x"] ** 2, "nan": float("nan")}
+
+
+def test_checkpoint_resumes_merges_and_summarizes(tmp_path):
+    # Reference: the plain list comprehension run_tasks stands for.
+    tasks = [{"x": i, "tag": "a"} for i in range(6)]
+    reference = [_square(t) for t in tasks]
+    ck = tmp_path / "ck.jsonl"
+    calls = []
+
+    def counted(t):
+        calls.append(t["x"])
+        return _square(t)
+
+    first = study_common.run_tasks(counted, tasks[:4], checkpoint=ck)
+    assert [r["y"] for r in first] == [r["y"] for r in reference[:4]] and calls == [0, 1, 2, 3]
+    # an interrupted writer leaves a cut-off last line: it is ignored and its task runs again
+    with open(ck, "a", encoding="utf-8") as fh:
+        fh.write('{"key": "cut')
+    partial = study_common.run_tasks(counted, tasks, checkpoint=ck, run_missing=False)
+    assert [r["x"] for r in partial] == [0, 1, 2, 3] and calls == [0, 1, 2, 3]
+    ck.write_text(ck.read_text().rsplit("\n", 1)[0] + "\n")  # drop the cut line before appending
+    calls.clear()
+    full = study_common.run_tasks(counted, tasks, checkpoint=ck)
+    assert calls == [4, 5]
+    assert [(r["x"], r["y"]) for r in full] == [(r["x"], r["y"]) for r in reference]
+    assert all(math.isnan(r["nan"]) for r in full)  # nan survives the checkpoint
+    # a changed task (another configuration) is not taken for a saved one
+    assert study_common.run_tasks(counted, [{"x": 1, "tag": "b"}], checkpoint=ck, run_missing=False) == []
+
+
+def test_checkpoint_rejects_a_corrupt_middle_line(tmp_path):
+    ck = tmp_path / "ck.jsonl"
+    ck.write_text('not json\n{"key": "k", "task": {}, "result": {}, "finished": ""}\n')
+    with pytest.raises(ValueError, match=r"line 1 is not JSON"):
+        study_common.load_checkpoint(ck)
+
+
+def test_allocate_is_largest_remainder():
+    # Largest-remainder (Hamilton) apportionment, worked by hand (common practice):
+    # 100 * (1, 2, 3.5) / 6.5 = 15.38, 30.77, 53.85 -> floors 15, 30, 53 (98); the two largest
+    # remainders (0.85, 0.77) get one each -> 15, 31, 54.
+    assert study_common.allocate(100, [1, 2, 3.5]) == [15, 31, 54]
+    # a floor lifts an entry and the rest is re-split: 10 - 2 = 8 for the other
+    assert study_common.allocate(10, [0, 1]) == [2, 8]
+    # 100 with floor 20 over weights (1, 1, 8): 10, 10, 80 -> the first two lifted to 20, 60 left
+    assert study_common.allocate(100, [1, 1, 8], floor=20) == [20, 20, 60]
+    assert study_common.allocate(100, [1, 1, 8], floor=40) == [40, 40, 40]  # floor x entries > total
+    with pytest.raises(ValueError, match=r"'weights' must be non-negative"):
+        study_common.allocate(10, [-1, 2])
+
+
+def test_revive_undoes_the_json_nan_mapping(tmp_path):
+    obj = {"a": float("nan"), "b": [1.0, float("inf")], "covered": None, "c": {"met": None, "v": 2}}
+    study_common.write_json(tmp_path / "x.json", obj)
+    back = study_common.revive(json.loads((tmp_path / "x.json").read_text()))
+    assert math.isnan(back["a"]) and back["b"][0] == 1.0 and math.isnan(back["b"][1])
+    assert back["covered"] is None and back["c"] == {"met": None, "v": 2}
+
+
+def test_only_parses_studies_and_sub_studies():
+    assert run_all._parse_only(("coverage.gate", "accuracy", "coverage.coverage")) == {
+        "coverage": ("coverage", "gate"), "accuracy": ("side", "cross")}
+    assert run_all._parse_only(("coverage",)) == {"coverage": ("coverage", "weights", "remedy", "gate")}
+    assert run_all._parse_only(("speed", "accuracy.cross")) == {"speed": (), "accuracy": ("cross",)}
+    with pytest.raises(ValueError, match=r"got \['coverage.nothing'\]"):
+        run_all._parse_only(("coverage.nothing",))
+
+
+def test_summarize_regenerates_from_saved_repeats(smoke_run, tmp_path):
+    raw, a, b = tmp_path / "raw", tmp_path / "a", tmp_path / "b"
+    for d in (a, b):
+        d.mkdir()
+        for name in ("benchmarks.md", "benchmarks-results.json"):
+            (d / name).write_bytes((smoke_run / name).read_bytes())
+    assert run_all.main(["--size", "smoke", "--jobs", "1", "--docs", str(a), "--only", "coverage",
+                         "--raw", str(raw)]) == 0
+    assert run_all.main(["--size", "smoke", "--jobs", "1", "--docs", str(b), "--only", "coverage",
+                         "--raw", str(raw), "--summarize"]) == 0
+    ra = json.loads((a / "benchmarks-results.json").read_text())["smoke"]["parts"]["coverage"]
+    rb = json.loads((b / "benchmarks-results.json").read_text())["smoke"]["parts"]["coverage"]
+    assert ra["results"]["coverage"]["rows"] == rb["results"]["coverage"]["rows"]
+    assert ra["results"]["gate"]["rows"] == rb["results"]["gate"]["rows"]
+    assert rb["summarized"] and not ra["summarized"]
+    assert "regenerated" in (b / "benchmarks.md").read_text()
+    # a stored partial study can be put back into a checkpoint and resumed from it
+    raw2 = tmp_path / "raw2"
+    raw2.mkdir()
+    store = json.loads((a / "benchmarks-results.json").read_text())
+    assert study_coverage.import_stored("smoke", store, raw2, label="test") == 3
+    assert study_coverage.import_stored("smoke", store, raw2, label="test") == 0  # already there
+    again = study_coverage.run_coverage("smoke", raw=raw2, run_missing=False)
+    assert again["rows"][0]["agf"] == ra["results"]["coverage"]["rows"][0]["agf"]
+    # the accuracy part, not named, is kept as stored
+    before = json.loads((smoke_run / "benchmarks-results.json").read_text())["smoke"]["parts"]["accuracy"]
+    assert json.loads((b / "benchmarks-results.json").read_text())["smoke"]["parts"]["accuracy"] == before
+
+
+def test_fidelity_plan_keeps_the_planners_proportions(smoke_run):
+    from robusttomo import metrics
+    from robusttomo.planner import assumed_device, choose_plan
+
+    side = json.loads((smoke_run / "benchmarks-results.json").read_text())["smoke"]["parts"]["accuracy"]
+    fp = side["results"]["side"]["settings"][0]["fidelity_plan"]
+    total = sum(fp["sequences"])
+    assert total >= 120  # the smoke plan's 120 sequences (more only where the floor of 2 lifted one)
+    # the same planner call, made here independently from the true average infidelity
+    r = 1 - metrics.average_gate_fidelity(study_common.general_error(1))
+    assert fp["average_error"] == pytest.approx(r, rel=1e-12)
+    prop = choose_plan(n_qubits=1, device=assumed_device(1, average_error=r, readout_error=0.0),
+                       targets={"average_gate_fidelity": 1e-5},
+                       costs={"seconds_per_shot": 1.0, "seconds_per_sequence": 0.0}, shots=100, seed=0)
+    assert tuple(fp["lengths"]) == tuple(prop.lengths) and 1 in fp["lengths"] and 2 in fp["lengths"]
+    w = np.array(prop.sequences, dtype=float)
+    # scaled to the default plan's total (smoke: 120 sequences over 10 lengths), with the
+    # planner's floor of sequences per length (its min_sequences, capped at total / lengths)
+    floor = min(50, total // len(fp["lengths"]))
+    assert fp["floor"] == floor
+    assert fp["sequences"] == study_common.allocate(total, prop.sequences, floor=floor)
+
+
+def test_identity_fit_and_control_variate_by_hand():
+    # Exact data y_m = c lambda**(m-1) are fitted exactly, whatever the weights.
+    m = np.array([1.0, 2, 3, 6, 12, 24])
+    y = 0.9 * 0.98 ** (m - 1)
+    assert study_coverage._identity_fit(m, y, np.linspace(1, 3, 6) * 1e-3) == pytest.approx(0.98, abs=1e-9)
+    lam, se = study_coverage._fit_with_se(m, y, np.full(6, 1e-3))
+    assert lam == pytest.approx(0.98, abs=1e-9) and 0 < se < 1e-3
+    # Least-squares control variate (common practice): F = (1, 2, 4), G = (0, 1, 2), mu = 1 gives
+    # beta = cov(F, G) / var(G) = 1.5, corrected F - 1.5 (G - 1) = (2.5, 2, 2.5): mean 7/3,
+    # sample sd sqrt(1/12), standard error sqrt(1/12) / sqrt(3) = 1/6.
+    mean, se = study_coverage._cv_stats(np.array([1.0, 2, 4]), np.array([0.0, 1, 2]), 1.0)
+    assert mean == pytest.approx(7 / 3) and se == pytest.approx(1 / 6)
+
+
+def test_decay_only_fidelity_interval_matches_analyze():
+    # Slow, obviously-correct reference: the whole analysis, whose figures.decay_fidelity is the
+    # interval the decay-only shortcut of the fidelity plan claims to reproduce.
+    import robusttomo as rt
+    from robusttomo import metrics
+
+    n, e, seed = 1, 0.03, 4242
+    fp = {"lengths": [1, 2, 3, 8, 16], "sequences": [40, 40, 40, 30, 30]}
+    t = {"n": n, "readout": e, "seed": seed, "bootstrap": 30, "fidelity_plan": fp, "decay_only": True}
+    got = study_accuracy._fid_task(t)["ours_fid"]
+    err = study_common.general_error(n)
+    dev = study_common.device(n, err, e)
+    plan = rt.make_plan(n_qubits=n, lengths=fp["lengths"], sequences=fp["sequences"], seed=seed + 10)
+    rec = rt.analyze(plan, rt.simulate(plan, dev, seed=seed + 11), bootstrap=30, seed=seed + 12, models=False,
+                     ranges=False, diamond=False)
+    ref = rec.figures.decay_fidelity
+    assert got["low"] == pytest.approx(ref.low, abs=1e-12) and got["high"] == pytest.approx(ref.high, abs=1e-12)
+    r_true = 1 - metrics.average_gate_fidelity(err)
+    assert got["infidelity_error"] == pytest.approx((1 - ref.value) - r_true, abs=1e-12)
