@@ -13,6 +13,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from common_data import result_numbers  # shared test builders
+
 import robusttomo as rt
 from robusttomo import assess
 from robusttomo import reconstruct as rc
@@ -40,23 +42,6 @@ def _groups(prep, n_groups: int, *, fresh: bool) -> dict[str, np.ndarray]:
             assess._FITTERS.clear()
         out.append(assess._replicate_group(prep, a, b))
     return assess._merge_replicate_groups(out[::-1], prep.bootstrap)  # merge does not rely on order
-
-
-def _figure_arrays(rec: assess.Reconstruction) -> tuple[np.ndarray, np.ndarray]:
-    f = rec.figures
-    vals = []
-    for iv in (f.average_gate_fidelity, f.entanglement_fidelity, f.diamond_distance, f.unitarity,
-               f.decay_fidelity, *f.pauli_error_rates.values()):
-        vals += [iv.value, iv.low, iv.high]
-    # error-generator figures go through a matrix logarithm and a least-squares solve (LAPACK),
-    # whose last digit can depend on the memory layout of the process: compared to rounding
-    rates = [x for iv in (f.coherent_share, *f.hamiltonian.values(), *f.stochastic.values())
-             for x in (iv.value, iv.low, iv.high)]
-    s = f.diamond_distance_range
-    vals += [s.low, s.high, s.attained_max, s.certified_max, rec.unital_block_error, rec.anchor_weight]
-    vals += [x for m in rec.models for x in (m.chi2, m.criterion, m.heldout_chi2, m.diamond_distance)]
-    exact = np.concatenate([np.array(vals, dtype=float), rec.nonunital_ranges.ravel(), rec.error_channel.ptm.ravel()])
-    return exact, np.array(rates, dtype=float)
 
 
 def test_group_bounds_cover_every_replicate_once():
@@ -107,7 +92,7 @@ def test_replicate_groups_1_2_3_give_identical_arrays(interleave):
     parts = [assess._run_part(prep, ("point",)), {"part": ("replicates", 0, 9), "arrays": _groups(prep, 3, fresh=True)}]
     rec_groups = assess._assemble_analysis(prep, parts)
     rec = rt.analyze(plan, counts, bootstrap=9, seed=7, ranges=False, models=False)
-    (a, rate_a), (b, rate_b) = _figure_arrays(rec), _figure_arrays(rec_groups)
+    (a, rate_a), (b, rate_b) = result_numbers(rec), result_numbers(rec_groups)
     assert np.array_equal(a, b, equal_nan=True)
     np.testing.assert_allclose(rate_b, rate_a, rtol=0, atol=1e-15)
 
@@ -133,7 +118,7 @@ def test_analyze_with_two_workers_equals_one_process(force_forkserver, monkeypat
         monkeypatch.setattr(assess, "_single_threaded", lambda: False)
     ticks = []
     par = rt.analyze(plan, counts, jobs=2, progress=lambda *t: ticks.append(t), **kw)
-    (a, rate_a), (b, rate_b) = _figure_arrays(ref), _figure_arrays(par)
+    (a, rate_a), (b, rate_b) = result_numbers(ref), result_numbers(par)
     assert np.isfinite(a).sum() > 50 and np.isfinite(rate_a).sum() > 15
     assert np.array_equal(a, b, equal_nan=True)
     np.testing.assert_allclose(rate_b, rate_a, rtol=0, atol=1e-15)

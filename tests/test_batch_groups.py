@@ -13,6 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from common_data import result_numbers  # shared test builders
+
 import robusttomo as rt
 from robusttomo import batch
 from robusttomo.batch import JobStatus, run_batch
@@ -33,24 +35,6 @@ def _manifest(root: Path) -> Path:
     m = root / "manifest.json"
     m.write_text(json.dumps({"schema_version": 1, "options": OPTIONS, "jobs": jobs}))
     return m
-
-
-def _all_numbers(rec) -> tuple[np.ndarray, np.ndarray]:
-    f = rec.figures
-    vals = []
-    for iv in (f.average_gate_fidelity, f.entanglement_fidelity, f.diamond_distance, f.unitarity,
-               f.decay_fidelity, *f.pauli_error_rates.values()):
-        vals += [iv.value, iv.low, iv.high]
-    # error-generator figures go through a matrix logarithm and a least-squares solve (LAPACK),
-    # whose last digit can depend on the memory layout of the process: compared to rounding
-    rates = [x for iv in (f.coherent_share, *f.hamiltonian.values(), *f.stochastic.values())
-             for x in (iv.value, iv.low, iv.high)]
-    s = f.diamond_distance_range
-    vals += [s.low, s.high, s.attained_max, s.certified_max, rec.unital_block_error, rec.anchor_weight]
-    vals += [x for m in rec.models for x in (m.chi2, m.criterion, m.heldout_chi2, m.diamond_distance)]
-    exact = np.concatenate([np.array(vals, dtype=float), rec.nonunital_ranges.ravel(), rec.error_channel.ptm.ravel(),
-                            rec.decays.bootstrap_lambdas.ravel()])
-    return exact, np.array(rates, dtype=float)
 
 
 def test_auto_groups():
@@ -88,7 +72,7 @@ def test_dask_replicate_groups_equal_local_single_process_run(tmp_path):
         for a, b in zip(local.outcomes, res.outcomes):
             assert a.status is JobStatus.DONE and b.status is JobStatus.DONE, (a.error, b.error)
             ra, rb = rt.load_reconstruction(a.result), rt.load_reconstruction(b.result)
-            (va, rate_a), (vb, rate_b) = _all_numbers(ra), _all_numbers(rb)
+            (va, rate_a), (vb, rate_b) = result_numbers(ra), result_numbers(rb)
             assert np.isfinite(va).sum() > 80 and np.isfinite(rate_a).sum() > 15
             assert np.array_equal(va, vb, equal_nan=True)  # to the last digit
             np.testing.assert_allclose(rate_b, rate_a, rtol=0, atol=1e-15)

@@ -12,9 +12,8 @@ import pytest
 import robusttomo.estimate as est
 from robusttomo.channels import random_channel, rotation
 from robusttomo.clifford import clifford_ptms
-from robusttomo.counts import Counts
 from robusttomo.estimate import compute_correlations, default_probes, probes_from_unitaries
-from robusttomo.plan import Plan, SequenceBlock, SequenceKind
+from common_data import random_counts, random_plan  # shared test builders
 
 
 def _dense_reference(steps, probe_ptms, final, e0):
@@ -26,23 +25,6 @@ def _dense_reference(steps, probe_ptms, final, e0):
     if final is not None:
         r = np.einsum("ij,kqj->kqi", final, r)
     return r
-
-
-def _plan(n, lengths, k, rng):
-    order = 24 if n == 1 else 11520
-    blocks, first = [], 0
-    for m in lengths:
-        blocks.append(SequenceBlock(SequenceKind.REFERENCE, m, rng.integers(0, order, size=(k, m)), first))
-        first += k
-    return Plan(n_qubits=n, shots=100, seed=0, blocks=tuple(blocks), interleave=None)
-
-
-def _counts(plan, rng):
-    d = 2**plan.n_qubits
-    cnt = rng.integers(0, 30, size=(sum(b.cliffords.shape[0] for b in plan.blocks), d)).astype(float)
-    cnt[:, 0] += 1
-    return Counts(n_qubits=plan.n_qubits, plan_fingerprint=plan.fingerprint, sequence_ids=plan.sequence_ids,
-                  counts=cnt, exact=False, source="test")
 
 
 @pytest.mark.parametrize("n", [1, 2])
@@ -68,8 +50,8 @@ def test_signed_permutation_propagation_equals_dense_products(n):
 
 def test_chunked_correlations_equal_unchunked(monkeypatch):
     rng = np.random.default_rng(5)
-    plan = _plan(2, [1, 2, 3, 4], 37, rng)
-    counts = _counts(plan, rng)
+    plan = random_plan(2, [1, 2, 3, 4], 37, rng)
+    counts = random_counts(plan, rng)
     probes = default_probes(2)
     whole = compute_correlations(plan, counts, probes=probes)
     monkeypatch.setattr(est, "_CHUNK_ELEMENTS", 97)  # many chunks over probes and sequences
@@ -82,8 +64,8 @@ def test_chunked_correlations_equal_unchunked(monkeypatch):
 
 def test_unitary_probes_at_length_three_equal_direct_values():
     rng = np.random.default_rng(6)
-    plan = _plan(1, [1, 2, 3], 30, rng)
-    counts = _counts(plan, rng)
+    plan = random_plan(1, [1, 2, 3], 30, rng)
+    counts = random_counts(plan, rng)
     us = np.stack([np.eye(2), np.array([[np.cos(0.2), -np.sin(0.2)], [np.sin(0.2), np.cos(0.2)]])]).astype(complex)
     probes = probes_from_unitaries(us, ["I", "ry"])
     corr = compute_correlations(plan, counts, probes=probes)

@@ -11,26 +11,8 @@ import numpy as np
 import pytest
 
 from robusttomo import fit
-from robusttomo.counts import Counts
 from robusttomo.estimate import compute_correlations
-from robusttomo.plan import Plan, SequenceBlock, SequenceKind
-
-
-def _plan(n, lengths, k, rng):
-    order = 24 if n == 1 else 11520
-    blocks, first = [], 0
-    for m in lengths:
-        blocks.append(SequenceBlock(SequenceKind.REFERENCE, m, rng.integers(0, order, size=(k, m)), first))
-        first += k
-    return Plan(n_qubits=n, shots=100, seed=0, blocks=tuple(blocks), interleave=None)
-
-
-def _counts(plan, rng):
-    d = 2**plan.n_qubits
-    cnt = rng.integers(0, 30, size=(sum(b.cliffords.shape[0] for b in plan.blocks), d)).astype(float)
-    cnt[:, 0] += 1
-    return Counts(n_qubits=plan.n_qubits, plan_fingerprint=plan.fingerprint, sequence_ids=plan.sequence_ids,
-                  counts=cnt, exact=False, source="test")
+from common_data import random_counts, random_plan  # shared test builders
 
 
 def _fit_inputs(corr, cv=True):
@@ -46,8 +28,8 @@ def _fit_inputs(corr, cv=True):
 @pytest.mark.parametrize("n, lengths", [(1, [1, 2, 3, 6]), (2, [1, 2, 3, 4, 8]), (2, [1, 3, 4])])
 def test_structured_sandwich_equals_dense_sandwich(n, lengths):
     rng = np.random.default_rng(7 + n)
-    plan = _plan(n, lengths, 60, rng)
-    corr = compute_correlations(plan, _counts(plan, rng))
+    plan = random_plan(n, lengths, 60, rng)
+    corr = compute_correlations(plan, random_counts(plan, rng))
     for cv in (True, False):
         design, c, lam, means, sig, corrected = _fit_inputs(corr, cv)
         fast = fit._sandwich(design, corr, c, lam, means, sig, corrected)
@@ -59,8 +41,8 @@ def test_structured_sandwich_equals_dense_sandwich(n, lengths):
 
 def test_sandwich_falls_back_to_pseudo_inverse_when_ill_conditioned():
     rng = np.random.default_rng(9)
-    plan = _plan(1, [1, 2, 4], 50, rng)
-    corr = compute_correlations(plan, _counts(plan, rng))
+    plan = random_plan(1, [1, 2, 4], 50, rng)
+    corr = compute_correlations(plan, random_counts(plan, rng))
     design, c, lam, means, sig, corrected = _fit_inputs(corr)
     sig = [s.copy() for s in sig]
     sig[1][3] = 1e-12  # one probe 1e10 times more precise: the bread is too ill-conditioned
