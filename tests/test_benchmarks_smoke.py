@@ -315,3 +315,20 @@ def test_decay_only_fidelity_interval_matches_analyze():
     assert got["low"] == pytest.approx(ref.low, abs=1e-12) and got["high"] == pytest.approx(ref.high, abs=1e-12)
     r_true = 1 - metrics.average_gate_fidelity(err)
     assert got["infidelity_error"] == pytest.approx((1 - ref.value) - r_true, abs=1e-12)
+
+
+def test_reduced_model_study_runs_at_its_smallest_size(tmp_path):
+    # benchmarks/study_models.py at a tiny size: one seed per truth, no sweep; checks the rows
+    # it writes, not its conclusions (those need 10^4 sequences, docs/benchmarks.md)
+    import study_models
+
+    out = tmp_path / "rows.json"
+    assert study_models.main(["--repeats", "1", "--bootstrap", "5", "--sequences", "600", "--plentiful", "600",
+                              "--sweep-repeats", "0", "--json", str(out)]) == 0
+    rows = json.loads(out.read_text())
+    assert len(rows) == 3 and {r["truth"] for r in rows} == {"inside", "outside"}
+    names = {"full", "coherent+stochastic", "pauli", "coherent"}
+    for r in rows:
+        errs = [r["err_linear"], r["err_cptp"], r["err_reduced"]]
+        assert all(math.isfinite(e) and e > 0 for e in errs)
+        assert r["chosen_analyze"] in names and r["chosen_aic"] in names
