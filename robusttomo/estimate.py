@@ -225,13 +225,11 @@ def _greedy_basis(blocks: np.ndarray, first: int, count: int, exclude: np.ndarra
 
 @functools.lru_cache(maxsize=None)
 def _default_indices(n: int, overcomplete: bool) -> tuple[int, ...]:
+    # one and two qubits (the whole group is scanned); three qubits: robusttomo/_probe_tables3.py
+    if n > 2:
+        raise ValueError(f"the greedy scan covers 1 and 2 qubits; got {n}")
     dd = (4**n - 1) ** 2
-    if n <= 2:
-        cand = np.arange(clifford_group_order(n), dtype=np.int64)
-    else:  # a fixed pool: the group is too large to scan (92897280 elements)
-        rng = np.random.default_rng(20261201)
-        cand = np.unique(rng.integers(1, clifford_group_order(3), size=dd + 2000))
-        cand = np.concatenate([[0], cand])
+    cand = np.arange(clifford_group_order(n), dtype=np.int64)
     blocks = clifford_ptms(n, cand)[:, 1:, 1:].reshape(cand.size, -1)
     if n == 1 and overcomplete:
         return tuple(int(i) for i in cand)  # all 24 one-qubit Cliffords
