@@ -40,16 +40,25 @@ def _haar(d: int, rng: np.random.Generator) -> np.ndarray:
     return q * (np.diag(r) / np.abs(np.diag(r)))
 
 
-def _problem(rng: np.random.Generator, noise: float, n_reps: int) -> tuple[LinearObservations, object]:
-    truth = rotation("ZZ", 0.08) @ embed(amplitude_damping(0.03), [0], 2) @ depolarizing(2, 0.99)
-    dd = 15
-    blocks = _pauli.ptms_of_unitaries(np.array([_haar(4, rng) for _ in range(dd * dd)]))[:, 1:, 1:]
+def _synthetic_rows(n: int, truth, noise: float, rng: np.random.Generator):
+    """Unit rows plus one Haar-random unitary probe per block entry, with a dense covariance.
+
+    Returns ``(design, cov, chol, mean)``: the design, its covariance (noise^2 times a random
+    well-conditioned matrix), the Cholesky factor, and the exact values of ``truth``.
+    """
+    d, dd = 2**n, 4**n - 1
+    blocks = _pauli.ptms_of_unitaries(np.array([_haar(d, rng) for _ in range(dd * dd)]))[:, 1:, 1:]
     design = np.vstack([np.eye(dd * dd), blocks.reshape(dd * dd, -1) / dd])
     k = design.shape[0]
     g = rng.normal(size=(k, k))
     cov = noise**2 * (g @ g.T / k + np.eye(k))
-    chol = np.linalg.cholesky(cov)
-    mean = design @ truth.unital_block.reshape(-1)
+    return design, cov, np.linalg.cholesky(cov), design @ truth.unital_block.reshape(-1)
+
+
+def _problem(rng: np.random.Generator, noise: float, n_reps: int) -> tuple[LinearObservations, object]:
+    truth = rotation("ZZ", 0.08) @ embed(amplitude_damping(0.03), [0], 2) @ depolarizing(2, 0.99)
+    design, cov, chol, mean = _synthetic_rows(2, truth, noise, rng)
+    k = design.shape[0]
     values = mean + chol @ rng.normal(size=k)
     reps = mean + (chol @ rng.normal(size=(k, n_reps))).T
     return LinearObservations(2, design, values, cov, tuple(f"row{i}" for i in range(k)), reps), truth
@@ -135,17 +144,12 @@ def _two_qubits(args: argparse.Namespace) -> None:
 def _coverage(n: int, noise: float, interior: bool, trials: int) -> None:
     """Coverage of the damped entry's range (``t_Z`` or ``t_ZI``) by each region."""
     rng = np.random.default_rng(7)
-    d, dd = 2**n, 4**n - 1
+    dd = 4**n - 1
     damping = embed(amplitude_damping(0.05), [0], n) if n > 1 else amplitude_damping(0.05)
     truth = damping @ depolarizing(n, 0.98) if interior else damping
     idx = 2 if n == 1 else 11  # Pauli "Z" / "ZI", row index minus one
-    blocks = _pauli.ptms_of_unitaries(np.array([_haar(d, rng) for _ in range(dd * dd)]))[:, 1:, 1:]
-    design = np.vstack([np.eye(dd * dd), blocks.reshape(dd * dd, -1) / dd])
+    design, cov, chol, mean = _synthetic_rows(n, truth, noise, rng)
     k = design.shape[0]
-    g = rng.normal(size=(k, k))
-    cov = noise**2 * (g @ g.T / k + np.eye(k))
-    chol = np.linalg.cholesky(cov)
-    mean = design @ truth.unital_block.reshape(-1)
     fitter = CptpFitter(LinearObservations(n, design, mean, cov, tuple(map(str, range(k)))))
     hits = {region: 0 for region in Region}
     t0 = time.perf_counter()
