@@ -91,11 +91,18 @@ def read(group: h5py.Group, cls: type, *, path: object) -> object:
     hints = typing.get_type_hints(cls)
     kwargs = {}
     for f in dataclasses.fields(cls):
+        if f.default is not dataclasses.MISSING and not _present(group, f.name):
+            continue  # a field added later, with a default: files written before it still load
         kwargs[f.name] = _read_value(group, f.name, hints[f.name], path=path)
     try:
         return cls(**kwargs)
     except (TypeError, ValueError) as exc:
         raise DataError(f"{path}: group '{group.name}' does not hold a valid {cls.__name__}: {exc}") from None
+
+
+def _present(group: h5py.Group, name: str) -> bool:
+    """Whether ``group`` stores field ``name`` in any form (dataset, group, attribute, empty mark)."""
+    return name in group or name in group.attrs or (name + _NONE) in group.attrs
 
 
 def _where(group: h5py.Group, name: str) -> str:

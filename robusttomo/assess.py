@@ -1,8 +1,9 @@
 """Assessment: the whole analysis of one data set and its figures of merit with intervals.
 
 :func:`analyze` runs estimate -> fit -> reconstruct -> models and evaluates every figure of
-merit on the point estimate and on each bootstrap replicate; intervals are the 2.5 and 97.5
-percentiles of the replicates (non-parametric percentile bootstrap over sequences).
+merit on the point estimate and on each bootstrap replicate; intervals are bias-corrected
+percentile intervals of the replicates (non-parametric bootstrap over sequences), except the
+reference-mode fidelities, which take the identity decay's studentized (bootstrap-t) interval.
 The result, a frozen :class:`Reconstruction`, saves to and loads from HDF5.
 """
 
@@ -402,10 +403,13 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     ``L_int`` from the interleaved ones, and the gate's own error ``L_G`` by a convex fit with
     ``L`` fixed; figures compare the noisy gate ``L_G o G`` with ``G``.
 
-    Intervals: percentile bootstrap over sequences (resampled within each length, every
-    replicate re-fits the control variate, the decays and the CPTP channel; in interleaved mode
-    reference and interleaved runs are resampled together so the uncertainty of ``L``
-    propagates into ``L_G``).
+    Intervals: bootstrap over sequences (resampled within each length, every replicate
+    re-fits the control variate, re-estimates the weights of the decay fit, re-fits the decays
+    and the CPTP channel; in interleaved mode reference and interleaved runs are resampled
+    together so the uncertainty of ``L`` propagates into ``L_G``).  Bias-corrected percentile
+    intervals of the replicates; in reference mode the average-gate and entanglement fidelities
+    and ``decay_fidelity`` take the studentized interval of the identity decay they are affine
+    maps of (:meth:`robusttomo.fit.DecayResult.identity_decay_interval`).
 
     The result does not depend on ``jobs``: every part of the analysis (each range family,
     each group of bootstrap replicates, the models) starts its solvers from a fixed state, and
@@ -985,15 +989,27 @@ def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Rec
             p_rep = p_rep / dec_ref.bootstrap_lambdas[:, ident]
     dfid_value = 1 - (d - 1) * (1 - p_main) / d
     dfid = 1 - (d - 1) * (1 - np.asarray(p_rep)) / d if p_rep is not None else None
+    agf_iv = _interval(point["agf"], rep("agf"))  # type: ignore[arg-type,index]
+    ef_iv = _interval(point["ef"], rep("ef"))  # type: ignore[arg-type,index]
+    dfid_iv = _interval(dfid_value, dfid)
+    if not prep.interleaved and reps is not None:
+        # reference mode: the anchored estimate's trace is the identity decay's, so both
+        # fidelities are increasing affine maps of it and take its studentized interval
+        lo, hi = dec_ref.identity_decay_interval()
+        if np.isfinite(lo) and np.isfinite(hi):
+            p0 = float(dec_ref.lambdas[ident])
+            agf_iv = Interval(agf_iv.value, *(float(point["agf"]) + (d - 1) * (x - p0) / d for x in (lo, hi)))  # type: ignore[arg-type]
+            ef_iv = Interval(ef_iv.value, *(float(point["ef"]) + d2m1 * (x - p0) / d**2 for x in (lo, hi)))  # type: ignore[arg-type]
+            dfid_iv = Interval(dfid_value, *(1 - (d - 1) * (1 - x) / d for x in (lo, hi)))
     figures = Figures(
-        average_gate_fidelity=_interval(point["agf"], rep("agf")),  # type: ignore[arg-type,index]
-        entanglement_fidelity=_interval(point["ef"], rep("ef")),  # type: ignore[arg-type,index]
+        average_gate_fidelity=agf_iv,
+        entanglement_fidelity=ef_iv,
         diamond_distance=(_interval(point["dd"], rep("dd")) if dd_profile is None  # type: ignore[arg-type,index]
                           else Interval(float(point["dd"]), *dd_profile)),  # type: ignore[index]
         diamond_distance_range=span,  # type: ignore[arg-type]
         unitarity=_interval(point["unitarity"], rep("unitarity")),  # type: ignore[arg-type,index]
         coherent_share=_interval(point["coh"], rep("coh")),  # type: ignore[arg-type,index]
-        decay_fidelity=_interval(dfid_value, dfid),
+        decay_fidelity=dfid_iv,
         pauli_error_rates={k: _interval(v, rep_col("pauli", k, labels))
                            for k, v in point["pauli"].items()},  # type: ignore[index,union-attr]
         hamiltonian={k: _interval(v, rep_col("ham", k, labels[1:]))

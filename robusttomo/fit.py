@@ -121,6 +121,13 @@ class DecayResult:
     bootstrap_lambdas : ndarray, shape (B, P) or None
         Non-parametric bootstrap replicates (sequences resampled within each length).
     bootstrap_spam : ndarray, shape (B,) or None
+    identity_gn_stderr : float
+        Gauss-Newton (model-based) standard error of the identity probe's decay, from the
+        per-length standard errors; the scale of :meth:`identity_decay_interval` (NaN
+        without an identity probe or from files written before it existed).
+    bootstrap_identity_gn_stderr : ndarray, shape (B,) or None
+        The same standard error computed in each bootstrap replicate from its own re-estimated
+        weights.
     """
 
     n_qubits: int
@@ -150,6 +157,8 @@ class DecayResult:
     warnings: tuple[str, ...]
     bootstrap_lambdas: np.ndarray | None
     bootstrap_spam: np.ndarray | None
+    identity_gn_stderr: float = float("nan")
+    bootstrap_identity_gn_stderr: np.ndarray | None = None
 
     @property
     def reduced_chi2(self) -> float:
@@ -178,6 +187,34 @@ class DecayResult:
         """Standard error of :attr:`average_gate_fidelity`."""
         d = 2**self.n_qubits
         return (d - 1) / d * self.identity_decay_stderr
+
+    def identity_decay_interval(self, level: float = 0.95) -> tuple[float, float]:
+        """Studentized (bootstrap-t) interval of :attr:`identity_decay`.
+
+        With ``t_b = (p_b - p) / se_b`` over the bootstrap replicates (``p_b`` and ``se_b`` the
+        replicate's decay and Gauss-Newton standard error from its own re-estimated weights),
+        the interval is ``[p - t_(1+level)/2 se, p - t_(1-level)/2 se]``, ``se`` the data's own
+        Gauss-Newton standard error ("Bootstrap confidence intervals", Statistical Science 11,
+        189 (1996), section 3).  Studentizing carries the uncertainty of the weights, which are
+        estimated from a few tens of sequences per length and correlate with the errors of the
+        estimate; a percentile interval with the weights held fixed was measured too narrow
+        (docs/benchmarks.md, coverage study).  Clipped to [-1, 1]; ``(nan, nan)`` without
+        replicates or with fewer than two finite ones.
+        """
+        if not 0.0 < float(level) < 1.0:
+            raise ValueError(f"'level' must lie in (0, 1); got {level!r}")
+        if self.bootstrap_lambdas is None or self.bootstrap_identity_gn_stderr is None:
+            return float("nan"), float("nan")
+        p = self.identity_decay
+        se = float(self.identity_gn_stderr)
+        pb = np.asarray(self.bootstrap_lambdas, dtype=float)[:, self._ident()]
+        sb = np.asarray(self.bootstrap_identity_gn_stderr, dtype=float)
+        ok = np.isfinite(pb) & np.isfinite(sb) & (sb > 0)
+        if ok.sum() < 2 or not (np.isfinite(se) and se > 0):
+            return float("nan"), float("nan")
+        t = (pb[ok] - p) / sb[ok]
+        q_lo, q_hi = np.quantile(t, [(1 - level) / 2, (1 + level) / 2])
+        return float(np.clip(p - q_hi * se, -1.0, 1.0)), float(np.clip(p - q_lo * se, -1.0, 1.0))
 
     def _ident(self) -> int:
         i = self.probes.identity_index
@@ -299,6 +336,55 @@ def _joint_fit(design: _Design, corr: Correlations, means: list[np.ndarray], sig
     return c, np.clip(lam, -1.0, 1.0)
 
 
+def _bread(design: _Design, corr: Correlations, c: float, lam: np.ndarray, sig):
+    """The arrowhead Gauss-Newton matrix ``H = J^T W J`` of the joint fit, by its parts.
+
+    Returns ``(h00, h0p, hpp, parts)``: ``H[0, 0]``, the ``c``-probe column ``H[0, 1:]``, the
+    diagonal ``H[1:, 1:]`` (each residual involves ``c`` and one probe, so the probe block is
+    diagonal), and per length ``(probe columns or None at m = 1, w a, w b)`` with ``a``, ``b``
+    the Jacobian entries of the ``c`` and probe columns and ``w = 1/stderr**2``.
+    """
+    p = design.n_probes
+    h00 = 0.0
+    h0p = np.zeros(p)
+    hpp = np.zeros(p)
+    parts = []
+    for li, m in enumerate(corr.lengths):
+        w = 1.0 / sig[li] ** 2
+        if m == 1:
+            a_, b_, pr = np.ones(1), np.zeros(1), None
+        else:
+            pr = design.probe_rows[li]
+            lm = lam[pr]
+            a_ = lm ** (m - 1)
+            b_ = c * (m - 1) * lm ** (m - 2)
+            h0p += np.bincount(pr, weights=w * a_ * b_, minlength=p)
+            hpp += np.bincount(pr, weights=w * b_ * b_, minlength=p)
+        h00 += float(np.sum(w * a_ * a_))
+        parts.append((pr, w * a_, w * b_))
+    return h00, h0p, hpp, parts
+
+
+def _gn_stderr(design: _Design, corr: Correlations, c: float, lam: np.ndarray, sig, probe: int) -> float:
+    """Model-based (Gauss-Newton) standard error of one probe's decay, ``sqrt((H^-1)_aa)``.
+
+    The arrowhead ``H`` (:func:`_bread`) inverts in closed form: ``(H^-1)_aa = 1/h_aa +
+    (h_0a / h_aa)**2 / s`` with the Schur complement ``s = h_00 - sum_b h_0b**2 / h_bb``.  It
+    uses only the weights, so a bootstrap replicate computes it from its own re-estimated
+    weights: the scale of the studentized (bootstrap-t) interval of :meth:`DecayResult.
+    identity_decay_interval`.  NaN when the probe has no data or ``H`` is singular.
+    """
+    h00, h0p, hpp, _ = _bread(design, corr, c, lam, sig)
+    on = hpp > 0
+    if not on[probe]:
+        return float("nan")
+    schur = h00 - float(np.sum(h0p[on] ** 2 / hpp[on]))
+    if not schur > 0:
+        return float("nan")
+    var = 1.0 / hpp[probe] + (h0p[probe] / hpp[probe]) ** 2 / schur
+    return float(math.sqrt(var)) if var > 0 else float("nan")
+
+
 def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
     """Covariance of (c, lambdas) by the sandwich formula, plus chi2 and normalized residuals.
 
@@ -312,31 +398,13 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
     """
     p = design.n_probes
     lengths = corr.lengths
-    h00 = 0.0
-    h0p = np.zeros(p)
-    hpp = np.zeros(p)
-    parts = []  # per length: probe columns, alpha = w a, beta = w b
+    h00, h0p, hpp, parts = _bread(design, corr, c, lam, sig)
     res_l, sg_l = [], []
     fast_only = np.ones(p, dtype=bool)
     fast_only[design.slow] = False
     for li, m in enumerate(lengths):
-        w = 1.0 / sig[li] ** 2
-        if m == 1:
-            a_ = np.ones(1)
-            b_ = np.zeros(1)
-            pr = None
-            res_l.append(means[0] - c)
-        else:
-            pr = design.probe_rows[li]
-            lm = lam[pr]
-            a_ = lm ** (m - 1)
-            b_ = c * (m - 1) * lm ** (m - 2)
-            h0p += np.bincount(pr, weights=w * a_ * b_, minlength=p)
-            hpp += np.bincount(pr, weights=w * b_ * b_, minlength=p)
-            res_l.append(means[li] - c * a_)
-        h00 += float(np.sum(w * a_ * a_))
+        res_l.append(means[0] - c if m == 1 else means[li] - c * lam[design.probe_rows[li]] ** (m - 1))
         sg_l.append(sig[li])
-        parts.append((pr, w * a_, w * b_))
     res = np.concatenate(res_l)
     sg = np.concatenate(sg_l)
     chi2 = float(np.sum((res / sg) ** 2))
@@ -474,17 +542,31 @@ def _own_constant_fit(ms: np.ndarray, ys: np.ndarray, ss: np.ndarray, c0: float,
     return float(sol.x[0]), se, float(np.sum(sol.fun**2)), int(ys.size - 2)
 
 
+def _stderr_of(corrected: list[np.ndarray]) -> list[np.ndarray]:
+    """Per-length standard errors of the means from the per-sequence (corrected) values."""
+    return [np.maximum(np.std(x, axis=0, ddof=1) / np.sqrt(x.shape[0]), 1e-15) for x in corrected]
+
+
 def _bootstrap_chunk(args):
-    corr, design, use_cv, sig, start, seeds = args
-    lam_out, c_out = [], []
+    """Replicates of the decay fit for the given seeds: (lambdas (k, P), c (k,), stderr (k,)).
+
+    Each replicate resamples sequences within each length, re-fits the control variate,
+    re-estimates the per-length standard errors (the weights of the fit) from its own
+    sequences and re-fits the decays; the third array is the replicate's Gauss-Newton
+    standard error of probe ``probe`` (NaN if ``probe`` is None).
+    """
+    corr, design, use_cv, start, seeds, probe = args
+    lam_out, c_out, se_out = [], [], []
     for seed in seeds:
         rng = np.random.default_rng(seed)
         picks = [rng.integers(0, s.values.shape[0], size=s.values.shape[0]) for s in corr.stats]
         lm = _length_means(corr, use_cv, picks)
+        sig = _stderr_of([x[1] for x in lm])
         c, lam = _joint_fit(design, corr, [x[0] for x in lm], sig, start=start)
         lam_out.append(lam)
         c_out.append(c)
-    return np.array(lam_out), np.array(c_out)
+        se_out.append(float("nan") if probe is None else _gn_stderr(design, corr, c, lam, sig, probe))
+    return np.array(lam_out), np.array(c_out), np.array(se_out)
 
 
 def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: int = 200,
@@ -524,7 +606,7 @@ def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: i
     lm = _length_means(corr, control_variate)
     means = [x[0] for x in lm]
     corrected = [x[1] for x in lm]
-    sig = [np.maximum(np.std(x[1], axis=0, ddof=1) / np.sqrt(x[1].shape[0]), 1e-15) for x in lm]
+    sig = _stderr_of(corrected)
     c, lam = _joint_fit(design, corr, means, sig)
     cov, chi2, dof, nres = _sandwich(design, corr, c, lam, means, sig, corrected)
 
@@ -604,20 +686,21 @@ def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: i
         if corr.n_qubits <= 2:
             m2cov = np.cov(ms, rowvar=False, ddof=1) / ms.shape[0]
 
-    boot_l = boot_c = None
+    ident = corr.probes.identity_index
+    gn_se = float("nan") if ident is None else _gn_stderr(design, corr, c, lam, sig, ident)
+    boot_l = boot_c = boot_se = None
     if bootstrap > 0:
         ss = np.random.SeedSequence(seed)
         seeds = [int(s.generate_state(1)[0]) for s in ss.spawn(bootstrap)]
         start = np.concatenate([[c], lam[design.slow]])
         if jobs == 1:
-            boot_l, boot_c = _bootstrap_chunk((corr, design, control_variate, sig, start, seeds))
+            boot_l, boot_c, boot_se = _bootstrap_chunk((corr, design, control_variate, start, seeds, ident))
         else:
             chunks = np.array_split(np.array(seeds, dtype=np.int64), jobs)
             with ProcessPoolExecutor(max_workers=jobs) as ex:
-                parts = list(ex.map(_bootstrap_chunk, [(corr, design, control_variate, sig, start,
-                                                        [int(x) for x in ch]) for ch in chunks if ch.size]))
-            boot_l = np.concatenate([x[0] for x in parts])
-            boot_c = np.concatenate([x[1] for x in parts])
+                parts = list(ex.map(_bootstrap_chunk, [(corr, design, control_variate, start,
+                                                        [int(x) for x in ch], ident) for ch in chunks if ch.size]))
+            boot_l, boot_c, boot_se = (np.concatenate([x[i] for x in parts]) for i in range(3))
 
     lam_cov = cov[1:, 1:]
     return DecayResult(
@@ -629,6 +712,7 @@ def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: i
         m2_statistic=m2, m2_covariance=m2cov, chi2=chi2, dof=dof, residuals=table["res"],
         probe_constants=pc, probe_constants_stderr=pcs, constant_spread_p=spread_p,
         warnings=tuple(warn), bootstrap_lambdas=boot_l, bootstrap_spam=boot_c,
+        identity_gn_stderr=gn_se, bootstrap_identity_gn_stderr=boot_se,
     )
 
 
