@@ -201,30 +201,11 @@ def _side_task(t: dict) -> dict:
             "code": sc.code_version()}
 
 
-def bc_interval(value: float, replicates: np.ndarray) -> tuple[float, float]:
-    """Bias-corrected percentile bootstrap 95% interval, as ``robusttomo.analyze`` reports.
-
-    ``z0 = Phi^-1(share of replicates below the estimate, ties counted half, clipped to
-    [1/(B+1), B/(B+1)])``, ends at the ``Phi(2 z0 -+ 1.96)`` quantiles ("Nonparametric standard
-    errors and confidence intervals", Canadian Journal of Statistics 9, 139 (1981)).
-    """
-    import scipy.stats
-
-    v = np.asarray(replicates, dtype=float)
-    v = v[np.isfinite(v)]
-    frac = (np.sum(v < value) + 0.5 * np.sum(v == value)) / v.size
-    frac = float(np.clip(frac, 1.0 / (v.size + 1), v.size / (v.size + 1)))
-    z0 = scipy.stats.norm.ppf(frac)
-    z = scipy.stats.norm.ppf(0.975)
-    lo, hi = np.quantile(v, scipy.stats.norm.cdf([2 * z0 - z, 2 * z0 + z]))
-    return float(lo), float(hi)
-
-
 def _fid_decay_only(t: dict, plan, counts, r_true: float) -> dict:
     """Fidelity-plan repeat from the decay fit alone (``estimate_decays``, same bootstrap seed).
 
-    The identity decay's fidelity ``1 - (d-1)(1-lambda_I)/d`` and its bias-corrected interval
-    over the bootstrap replicates of ``lambda_I``: what ``analyze`` reports as
+    The identity decay's fidelity ``1 - (d-1)(1-lambda_I)/d`` and its studentized interval
+    (``DecayResult.identity_decay_interval``, mapped): what ``analyze`` reports as
     ``figures.decay_fidelity`` (``analyze`` passes its seed to the same decay bootstrap).
     """
     import robusttomo as rt
@@ -234,7 +215,7 @@ def _fid_decay_only(t: dict, plan, counts, r_true: float) -> dict:
     dec = rt.estimate_decays(plan, counts, bootstrap=t["bootstrap"], seed=t["seed"] + 12)
     k = dec.probes.labels.index("I")
     value = 1 - (d - 1) * (1 - float(dec.lambdas[k])) / d
-    lo, hi = bc_interval(value, 1 - (d - 1) * (1 - dec.bootstrap_lambdas[:, k]) / d)
+    lo, hi = (1 - (d - 1) * (1 - x) / d for x in dec.identity_decay_interval())
     f_true = 1 - r_true
     return {"low": lo, "high": hi, "covered": bool(lo <= f_true <= hi), "decay_covered": bool(lo <= f_true <= hi),
             "infidelity_error": (1 - value) - r_true, "diamond_error": float("nan"), "block_error": float("nan"),

@@ -409,9 +409,10 @@ def _remedy_task(t: dict) -> dict:
     variate per length (:func:`_cv_stats`, as the package does it) and the identity-only fit
     (:func:`_fit_with_se`).  ``B`` replicates resample sequences within each length, as the
     package's bootstrap does.  Variants: ``fixed`` (percentile, weights of the full data held
-    fixed: what the package does), ``reweighted`` (percentile, weights re-estimated in every
-    replicate), ``student`` (bootstrap-t: quantiles of ``(lambda* - lambda) / se*`` with
-    re-estimated weights, scaled by the data's ``se``), ``wald`` (``lambda +- 1.96 se``).
+    fixed: what the package did before 58fdae0), ``reweighted`` (percentile, weights re-estimated
+    in every replicate), ``student`` (bootstrap-t: quantiles of ``(lambda* - lambda) / se*`` with
+    re-estimated weights, scaled by the data's ``se``: what the package does since, on its joint
+    fit), ``wald`` (``lambda +- 1.96 se``).
     """
     import robusttomo as rt
     from robusttomo.estimate import compute_correlations, probes_from_unitaries
@@ -488,9 +489,10 @@ def markdown_remedy(res: dict) -> str:
         "its per-sequence values, the control variate per length, a fit of `c lambda^(m-1)` weighted by the "
         "per-length standard errors), and four intervals for `lambda_I` from the same resampling of sequences "
         "within each length: \"fixed\" keeps the full data's weights in every replicate (what the package's "
-        "bootstrap does; it should reproduce the package's coverage), \"reweighted\" re-estimates the weights "
-        "in every replicate, \"student\" is the bootstrap-t interval (quantiles of `(lambda* - lambda)/se*` "
-        "with re-estimated weights, scaled by the data's Gauss-Newton `se`), \"wald\" is `lambda +- 1.96 se`.")
+        "bootstrap did before commit 58fdae0; it reproduced that package's coverage), \"reweighted\" re-estimates "
+        "the weights in every replicate, \"student\" is the bootstrap-t interval (quantiles of "
+        "`(lambda* - lambda)/se*` with re-estimated weights, scaled by the data's Gauss-Newton `se`; the "
+        "package's fidelity interval since, on its joint fit), \"wald\" is `lambda +- 1.96 se`.")
     out.append("")
     rows = []
     for r in res["rows"]:
@@ -738,8 +740,8 @@ def _reading(res: dict) -> str:
             f"experiments {sc.fmt(lam['sd_over_experiments'])}). Coverage of the narrower / wider half of the "
             f"intervals {sc.fmt(a['coverage_narrow_half'])} / {sc.fmt(a['coverage_wide_half'])}; low/high misses "
             f"{row['agf']['missed_low']}/{row['agf']['missed_high']}. Spread with estimated / fixed weights "
-            f"{sc.fmt(w['sd_own_weights'] / w['sd_fixed_weights'])} (the package's bootstrap holds the weights "
-            f"fixed). On the same data: package-like interval (\"fixed\") {sc.fmt(rm['fixed']['coverage'])}, weights "
+            f"{sc.fmt(w['sd_own_weights'] / w['sd_fixed_weights'])} (the package's bootstrap held the weights "
+            f"fixed before 58fdae0). On the same data: the old package-like interval (\"fixed\") {sc.fmt(rm['fixed']['coverage'])}, weights "
             f"re-estimated per replicate {sc.fmt(rm['reweighted']['coverage'])}, bootstrap-t "
             f"{sc.fmt(rm['student']['coverage'])}.")
         out.append("")

@@ -223,8 +223,9 @@ class Reconstruction:
     reference_channel : Channel or None
         Interleaved mode: the reference error ``L`` the gate error was isolated with.
     anchor_weight : float
-        Weight of the fidelity re-anchoring mixture (positive: towards the identity, negative:
-        towards the depolarizing channel) that made the estimate's identity-probe decay equal
+        Weight of the fidelity re-anchoring mixture (positive: towards higher fidelity, the
+        share of the estimate replaced by its own unitary part; negative: towards the
+        depolarizing channel) that made the estimate's identity-probe decay equal
         the measured one; see ``_anchor``.  A large value means the CPTP constraints fought
         the data.
     """
@@ -338,36 +339,62 @@ def _classic_interleaved(ref, inter, n: int) -> ClassicInterleaved:
     return ClassicInterleaved(float(r), float(r - e), float(r + e), float(p_ref), float(p_int))
 
 
+def _closest_unitary(ch: Channel) -> Channel:
+    """The unitary channel of the polar part of the estimate's dominant Kraus operator.
+
+    ``K`` from the largest Choi eigenvector (:meth:`Channel.kraus` convention), ``U = W V^dagger``
+    from its singular value decomposition ``K = W S V^dagger``: the unitary closest to ``K`` in
+    Frobenius norm (common practice: the orthogonal Procrustes solution), i.e. the coherent part
+    of the estimate's error.
+    """
+    d = ch.dim
+    _, v = np.linalg.eigh(ch.choi)
+    k = v[:, -1].reshape(d, d).T
+    w, _, vh = np.linalg.svd(k)
+    return Channel.from_unitary(w @ vh)
+
+
 def _anchor(ch: Channel, functional: np.ndarray, target: float) -> tuple[Channel, float]:
     """Re-anchor the fidelity direction of a CPTP estimate to a precisely measured decay.
 
     The CPTP constraints bias a noisy fit towards lower fidelity (lifting negative Choi
     eigenvalues takes weight from the dominant one), while the identity-probe decay, pinned by
     the long sequences, is unbiased and far more precise.  The estimate is therefore mixed with
-    the identity channel (to raise ``functional . vec(B)``) or with the completely depolarizing
-    channel (to lower it) so that ``functional . vec(B) = target``:
+    a CPTP channel ``A`` so that ``functional . vec(B) = target``:
 
-        L' = (1 - a) L + a A,   A = identity or depolarizing,   0 <= a <= 1.
+        L' = (1 - a) L + a A,   0 <= a <= 1.
 
-    A convex combination of CPTP maps is CPTP, and mixing with the identity shrinks the whole
-    error towards zero, which also counters the upward bias noise gives to error measures.
-    Returns the mixed channel and the signed weight (positive: towards the identity).
+    To raise the fidelity, ``A`` is the estimate's own coherent part, the unitary channel
+    :func:`_closest_unitary`: the excess error the constraints added is incoherent, and mixing
+    with ``U`` removes it while keeping the estimate's rotation (mixing with the identity
+    instead would shrink the coherent error by ``1 - a`` too; measured on two-qubit data at the
+    default plan, it lowered the diamond distance by about a tenth of its value, on top of the
+    fit's own shrinkage).  If even ``U`` is below the target, ``U`` is then mixed with the
+    identity.  To lower the fidelity, ``A`` is the completely depolarizing channel.  A convex
+    combination of CPTP maps is CPTP.  Returns the mixed channel and the signed weight
+    (positive: towards higher fidelity, the share of the estimate replaced; negative: towards
+    the depolarizing channel).
     """
     d2 = ch.ptm.shape[0]
     f_now = float(functional @ ch.unital_block.reshape(-1))
     f_id = float(functional @ np.eye(d2 - 1).reshape(-1))
     if target > f_now and f_id > f_now:
+        u = _closest_unitary(ch)
+        f_u = float(functional @ u.unital_block.reshape(-1))
+        if f_u > f_now and target <= f_u:
+            a = (target - f_now) / (f_u - f_now)
+            return Channel.from_ptm((1 - a) * ch.ptm + a * u.ptm), float(a)
+        if f_u > f_now and f_id > f_u:  # all the way to U, then towards the identity
+            b = min((target - f_u) / (f_id - f_u), 1.0)
+            return Channel.from_ptm((1 - b) * u.ptm + b * np.eye(d2)), 1.0
         a = min((target - f_now) / (f_id - f_now), 1.0)
-        anchor = np.eye(d2)
-    elif target < f_now and f_now > 0:
+        return Channel.from_ptm((1 - a) * ch.ptm + a * np.eye(d2)), float(a)
+    if target < f_now and f_now > 0:
         a = min((f_now - target) / f_now, 1.0)  # the depolarizing block is 0
         anchor = np.zeros((d2, d2))
         anchor[0, 0] = 1.0
-        a = -a
-    else:
-        return ch, 0.0
-    w = abs(a)
-    return Channel.from_ptm((1 - w) * ch.ptm + w * anchor), float(a)
+        return Channel.from_ptm((1 - a) * ch.ptm + a * anchor), -float(a)
+    return ch, 0.0
 
 
 def _gate_frame_values(comp: LinearObservations, ref_b: Channel, ref: Channel, gate: np.ndarray,

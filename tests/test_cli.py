@@ -348,7 +348,12 @@ def test_shipped_demo_data_are_reproducible_and_small(tmp_path):
     assert script.main(["--output-dir", str(tmp_path)]) == 0
     assert load_plan(tmp_path / "plan.h5").fingerprint == plan.fingerprint
     assert load_counts(tmp_path / "counts.h5").fingerprint == counts.fingerprint
-    assert scenario["true_figures"] == json.loads((tmp_path / "scenario.json").read_text())["true_figures"]
+    # the true figures go through LAPACK and a convex solver (diamond distance), whose last digits
+    # depend on the machine's BLAS and thread count: equal to 1e-8, not bit for bit
+    again = json.loads((tmp_path / "scenario.json").read_text())["true_figures"]
+    assert again.keys() == scenario["true_figures"].keys()
+    for key, value in scenario["true_figures"].items():
+        assert again[key] == pytest.approx(value, rel=1e-8, abs=1e-12), key
 
 
 def _small_demo_data(d: Path) -> None:
