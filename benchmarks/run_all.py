@@ -52,6 +52,7 @@ import study_common as sc  # first: pins BLAS threads before numpy loads
 import argparse  # noqa: E402
 import datetime  # noqa: E402
 import json  # noqa: E402
+import os  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
@@ -117,8 +118,10 @@ def _run_script(path: Path, size: str) -> dict:
     timeout = None if size == "full" or path.name in SCRIPT_ARGS_SMALL else SCRIPT_TIMEOUT_SMALL_S
     t0 = time.perf_counter()
     try:
+        env = {**os.environ, "PYTHONPATH": os.pathsep.join(
+            [str(sc.ROOT)] + ([os.environ["PYTHONPATH"]] if os.environ.get("PYTHONPATH") else []))}
         p = subprocess.run([sys.executable, str(path), *args], cwd=sc.ROOT, capture_output=True, text=True,
-                           timeout=timeout)
+                           timeout=timeout, env=env)
         status, tail = p.returncode, (p.stdout.strip().splitlines() or [""])[-1]
         if p.returncode != 0 and p.stderr.strip():
             tail = p.stderr.strip().splitlines()[-1]

@@ -32,6 +32,8 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 if str(HERE) not in sys.path:  # baselines.py lives beside the study scripts
     sys.path.insert(0, str(HERE))
+if str(ROOT) not in sys.path[:2]:  # measure this checkout's package, not another installed copy
+    sys.path.insert(1, str(ROOT))
 
 SIZES = ("smoke", "small", "full")
 

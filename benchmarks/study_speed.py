@@ -237,12 +237,18 @@ def headline(n: int, sequences: int, bootstrap: int) -> dict:
             stages[s] = last[s] - prev_end
         prev_end = last[s]
     stages["rest (point figures, intervals, assembly)"] = total - prev_end
+    # the same analysis on the 2 cores the target names: its independent parts in 2 processes
+    # (same results, docs/method-analysis.md "Parallel parts"); total wall time only
+    t1 = time.perf_counter()
+    rt.analyze(plan, counts, bootstrap=bootstrap, seed=5, jobs=2)
+    jobs2 = time.perf_counter() - t1
     return {"n": n, "sequences": int(sum(b.n_sequences for b in plan.blocks)), "probes": rec.decays.probes.n_probes,
-            "bootstrap": bootstrap, "wall_s": total, "stages_s": stages, "solver": rec.solver,
+            "bootstrap": bootstrap, "wall_s": total, "jobs2_wall_s": jobs2, "stages_s": stages, "solver": rec.solver,
             "fell_back": rec.solver_fell_back, "warnings": list(rec.warnings),
             "extrapolated_200_s": (total + (200 - bootstrap) * (stages.get("bootstrap: CPTP re-fits", 0.0)
                                                                 + stages.get("bootstrap: figures of merit of every replicate", 0.0))
-                                   / bootstrap) if 0 < bootstrap < 200 else total}
+                                   / bootstrap) if 0 < bootstrap < 200 else total,
+            "jobs2_extrapolated_200_s": jobs2 * (200 / bootstrap) if 0 < bootstrap < 200 else jobs2}
 
 
 def _top_functions(pr, top: int) -> list[dict]:
@@ -314,10 +320,11 @@ def run(size: str = "small", *, jobs: int = 1) -> dict:
                         "met": bool(g["floor_ratio"] <= FLOOR_RATIO_TARGET)})
     if head is not None:
         measured_200 = head["bootstrap"] >= 200
-        targets.append({"target": "two-qubit full analysis (225 probes, 2000 sequences, 200 replicates) < 30 s"
-                                  + ("" if measured_200 else " (extrapolated from the replicates run)"),
-                        "value": head["extrapolated_200_s"], "limit": HEADLINE_TARGET_S,
-                        "met": bool(head["extrapolated_200_s"] < HEADLINE_TARGET_S)})
+        targets.append({"target": "two-qubit full analysis (225 probes, 2000 sequences, 200 replicates) < 30 s "
+                                  "on 2 cores (jobs=2)"
+                                  + ("" if measured_200 else " (scaled from the replicates run)"),
+                        "value": head["jobs2_extrapolated_200_s"], "limit": HEADLINE_TARGET_S,
+                        "met": bool(head["jobs2_extrapolated_200_s"] < HEADLINE_TARGET_S)})
     return {"config": {"grid": cfg["grid"], "bootstrap": cfg["bootstrap"], "headline": cfg["headline"]},
             "probe_set_build_s": warm, "grid": grid, "headline": head, "profile": prof,
             "correlations_profile": corr_prof, "targets": targets,
@@ -351,8 +358,9 @@ def markdown(res: dict, *, figures: dict[str, str]) -> str:
     if h is not None:
         out.append(f"Headline: `analyze(plan, counts, bootstrap={h['bootstrap']}, seed=5)` with every other option at "
                    f"its default (models, ranges, diamond distance), {h['n']} qubits, {h['probes']} probes, "
-                   f"{h['sequences']} sequences: **{sc.fmt(h['wall_s'])} s** (solver {h['solver']}"
-                   f"{', fell back' if h['fell_back'] else ''})."
+                   f"{h['sequences']} sequences: **{sc.fmt(h['wall_s'])} s** in one process (solver {h['solver']}"
+                   f"{', fell back' if h['fell_back'] else ''}), **{sc.fmt(h['jobs2_wall_s'])} s** with `jobs=2` "
+                   "(its independent parts in two processes, identical results; the target's 2 cores)."
                    + ("" if h["bootstrap"] >= 200 else
                       f" With 200 replicates, at the replicate cost measured here: about "
                       f"**{sc.fmt(h['extrapolated_200_s'])} s**."))
