@@ -846,7 +846,13 @@ def _run_part(prep: _Prepared, part: tuple, tick=None) -> dict[str, object]:
     """Run one part (see ``_analysis_parts``); ``tick(done, total)`` reports progress within it."""
     kind = part[0]
     if kind == "ranges":
-        return {"part": part, **_range_part(prep, part[1], None if tick is None else (lambda k: tick(k, 2)))}
+        from robusttomo import reconstruct as rc
+
+        try:
+            return {"part": part, **_range_part(prep, part[1], None if tick is None else (lambda k: tick(k, 2)))}
+        except rc.SolverError as exc:
+            # never a silent wrong number: the range is reported as not computed, with the reason
+            return {"part": part, "failed": str(exc)}
     if kind == "replicates":
         return {"part": part, "arrays": _replicate_group(prep, part[1], part[2], tick=tick)}
     if kind == "point":
@@ -983,12 +989,20 @@ def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Rec
     ranges = {r["part"][1]: r for r in by_kind.get("ranges", [])}  # type: ignore[index]
     dd_profile: tuple[float, float] | None = None
     if prep.ranges:
-        nu_arr = np.asarray(ranges["joint"]["nonunital"])
-        if prep.diamond:
-            span = ranges["joint"]["span"]
-            dd_profile = ranges["profile"]["dd_profile"]  # type: ignore[assignment]
-        else:
+        joint, profile = ranges["joint"], ranges.get("profile", {})
+        for which, r in (("ranges over the joint region", joint), ("diamond-distance profile interval (the diamond distance's 95% interval)", profile)):
+            if "failed" in r:
+                warn.append(f"{which} not computed: {r['failed']}; usually too few sequences for the "
+                            "decays' covariance (add sequences at every length)")
+        nu_arr = np.full((d2m1, 2), np.nan) if "failed" in joint else np.asarray(joint["nonunital"])
+        if not prep.diamond:
             span = DiamondSpan(float("nan"), float("nan"), True, "not computed (diamond=False)")
+        elif "failed" in joint:
+            span = DiamondSpan(float("nan"), float("nan"), True, "not computed (solver failure, see warnings)")
+        else:
+            span = joint["span"]
+        if prep.diamond and "failed" not in profile:
+            dd_profile = profile["dd_profile"]  # type: ignore[assignment]
     else:
         nu_arr = np.full((d2m1, 2), np.nan)
         span = DiamondSpan(float("nan"), float("nan"), True, "not computed (ranges=False)")

@@ -64,6 +64,7 @@ class LinearObservations:
 
 #: A length with fewer sequences than this gets a warning: its standard error is unreliable.
 MIN_SEQUENCES = 20
+_SE_FLOOR = 1e-15  # standard error of a length whose values do not vary (keeps weights finite)
 #: p-value below which a diagnostic test raises a warning.
 WARN_P = 1e-3
 
@@ -544,7 +545,7 @@ def _own_constant_fit(ms: np.ndarray, ys: np.ndarray, ss: np.ndarray, c0: float,
 
 def _stderr_of(corrected: list[np.ndarray]) -> list[np.ndarray]:
     """Per-length standard errors of the means from the per-sequence (corrected) values."""
-    return [np.maximum(np.std(x, axis=0, ddof=1) / np.sqrt(x.shape[0]), 1e-15) for x in corrected]
+    return [np.maximum(np.std(x, axis=0, ddof=1) / np.sqrt(x.shape[0]), _SE_FLOOR) for x in corrected]
 
 
 def _bootstrap_chunk(args):
@@ -637,6 +638,11 @@ def fit_decays(corr: Correlations, *, control_variate: bool = True, bootstrap: i
         if k < MIN_SEQUENCES:
             warn.append(f"length {m} has only {k} sequences; its standard errors are unreliable below "
                         f"{MIN_SEQUENCES}: add sequences at this length")
+    for m, sd in zip(lengths, sig):
+        if np.any(sd <= _SE_FLOOR * 10):
+            warn.append(f"the values at length {m} do not vary over its sequences (standard error 0), so "
+                        "its weight is unbounded and the chi-square regions are meaningless: add sequences "
+                        "at this length")
     # per-probe fits with a free constant
     pc = np.full(p, np.nan)
     pcs = np.full(p, np.nan)

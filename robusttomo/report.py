@@ -98,7 +98,7 @@ def _fmt(x: object, digits: int = 5) -> str:
 
 def _fmt_ci(iv: Any, digits: int = 5) -> str:
     if not (math.isfinite(iv.low) and math.isfinite(iv.high)):
-        return "n/a (no bootstrap)"
+        return "n/a (not computed: no bootstrap, or see the warnings)"
     return f"[{_fmt(iv.low, digits)}, {_fmt(iv.high, digits)}]"
 
 

@@ -154,3 +154,41 @@ def test_result_without_models_round_trips(tmp_path):
     rt.save_reconstruction(rec, tmp_path / "r.h5")
     back = rt.load_reconstruction(tmp_path / "r.h5")
     assert back.models == () and back.figures.average_gate_fidelity == rec.figures.average_gate_fidelity
+
+
+def test_too_few_sequences_degrade_to_reported_gaps_not_a_crash():
+    # three sequences at each long length: their control-variate-corrected values do not vary,
+    # the decays' covariance is singular and the range programs cannot be solved; the analysis
+    # must still return, say why, and leave the ranges empty rather than wrong
+    lengths = (1, 2, 3, 6, 12, 24)
+    plan = rt.make_plan(n_qubits=1, lengths=lengths, sequences=[17, 17, 17, 3, 3, 3], seed=0)
+    dev = rt.Device.build(1, error=random_channel(1, 0.1, np.random.default_rng(7001)), readout=[(0.02, 0.04)])
+    rec = rt.analyze(plan, rt.simulate(plan, dev, seed=1), bootstrap=4, seed=3, models=False)
+    assert any("do not vary over its sequences" in w and "length 6" in w for w in rec.warnings)
+    span = rec.figures.diamond_distance_range
+    if any("not computed" in w for w in rec.warnings):
+        assert np.isnan(span.low) and np.isnan(span.high)
+        assert "not computed" in span.method
+    assert np.isfinite(rec.figures.average_gate_fidelity.value)
+
+
+def test_range_solver_failure_is_reported(monkeypatch):
+    from robusttomo import reconstruct as rc
+
+    def fail(self, *a, **k):
+        raise rc.SolverError("min t[0]: forced failure")
+
+    monkeypatch.setattr(rc.CptpFitter, "nonunital_range", fail)
+    plan = rt.make_plan(n_qubits=1, lengths=(1, 2, 3, 6), sequences=60, seed=2)
+    dev = rt.Device.build(1, error=rotation("X", 0.1) @ depolarizing(1, 0.99), readout=[(0.02, 0.03)])
+    rec = rt.analyze(plan, rt.simulate(plan, dev, seed=3), bootstrap=20, seed=4, models=False)
+    joint = [w for w in rec.warnings if w.startswith("ranges over the joint region not computed")]
+    prof = [w for w in rec.warnings if w.startswith("diamond-distance profile interval") and "not computed" in w]
+    assert len(joint) == 1 and "forced failure" in joint[0] and len(prof) == 1
+    assert np.all(np.isnan(rec.nonunital_ranges))
+    span = rec.figures.diamond_distance_range
+    assert np.isnan(span.low) and "not computed" in span.method
+    # the point value stays; its interval (the profile interval) is left empty, not guessed
+    dd = rec.figures.diamond_distance
+    assert np.isfinite(dd.value) and np.isnan(dd.low) and np.isnan(dd.high)
+    assert np.isfinite(rec.figures.average_gate_fidelity.low)
