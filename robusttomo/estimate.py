@@ -422,24 +422,32 @@ def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray
     k, m, d2 = perm.shape
     q = probe_ptms.shape[0]
     r = sign[:, 0] * e0[perm[:, 0]]  # (K, d2)
-    r = np.ascontiguousarray(np.broadcast_to(r, (q, k, d2))).reshape(q, k * d2)
+    r = np.broadcast_to(r, (q, k, d2)).copy().reshape(q, k * d2)  # a writable copy, also for q = 1
     if m > 1:
         probe_op = _signed_permutations(probe_ptms)
+        if probe_op is not None and np.array_equal(probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)) \
+                and np.all(probe_op[1] == 1.0):
+            probe_op, identity = None, True  # only identity probes: the probe step is nothing
+        else:
+            identity = False
         if probe_op is not None:
             pidx = (np.arange(q)[:, None, None] * (k * d2) + np.arange(k)[None, :, None] * d2
                     + probe_op[0][:, None, :]).reshape(-1)
             psign = probe_op[1][:, None, :]
-        else:
+        elif not identity:
             dense_t = np.swapaxes(probe_ptms, -1, -2)
         sidx = (np.arange(k)[None, :, None] * d2 + np.swapaxes(perm[:, 1:], 0, 1)).reshape(m - 1, k * d2)
         ssign = np.swapaxes(sign[:, 1:], 0, 1).reshape(m - 1, k * d2)
+        buf = np.empty_like(r)
         for t in range(m - 1):
             if probe_op is not None:
-                r = (np.take(r, pidx).reshape(q, k, d2) * psign).reshape(q, k * d2)
-            else:
+                # the indices are in range; mode "clip" lets take write into ``out`` unbuffered
+                np.take(r.reshape(-1), pidx, out=buf.reshape(-1), mode="clip")
+                np.multiply(buf.reshape(q, k, d2), psign, out=r.reshape(q, k, d2))
+            elif not identity:
                 r = np.matmul(r.reshape(q, k, d2), dense_t).reshape(q, k * d2)
-            r = np.take(r, sidx[t], axis=1)
-            r *= ssign[t]
+            np.take(r, sidx[t], axis=1, out=buf, mode="clip")
+            np.multiply(buf, ssign[t], out=r)
     r = r.reshape(q, k, d2)
     if final is not None:
         r = r @ final.T
@@ -477,24 +485,25 @@ def _filtered(r: np.ndarray, zw: np.ndarray, d: int) -> np.ndarray:
 def _length_two_values(phys: np.ndarray, u: np.ndarray, u_id: np.ndarray, v: np.ndarray, kap: float):
     """Per-sequence length-2 values ``kappa u_s^T B_p v_s`` of every probe, measured and ideal.
 
-    One matrix product per chunk of sequences: the flattened outer products ``u_s v_s^T``
-    ``(K, D*D)`` times the flattened unital blocks ``(D*D, P)``, so no ``(K, P, D)``
-    intermediate is formed.  Returns f, g, each (K, P).
+    One matrix product per chunk of sequences, ``v (K, D) @ [B_p^T] (D, P*D)``, gives every
+    ``B_p v_s``; the measured and the ideal values are then two batched dot products with
+    ``u_s`` and ``u_ideal_s`` that share it.  Returns f, g, each (K, P).
     """
     p = phys.shape[0]
     dd = u.shape[1]
-    blocks = phys[:, 1:, 1:].reshape(p, dd * dd).T  # (D*D, P); a copy: the slice is strided
+    # bt[j, p*D + i] = B_p[i, j], so (v @ bt)[s, p*D + i] = (B_p v_s)_i
+    bt = np.ascontiguousarray(np.transpose(phys[:, 1:, 1:], (2, 0, 1))).reshape(dd, p * dd)
     k = u.shape[0]
     f = np.empty((k, p))
     g = np.empty((k, p))
-    kc = max(1, _CHUNK_ELEMENTS // (2 * max(p, dd * dd)))
+    kc = max(1, _CHUNK_ELEMENTS // (p * dd))
     for a in range(0, k, kc):
         sl = slice(a, a + kc)
-        outer = (np.concatenate([u[sl], u_id[sl]])[:, :, None] * np.concatenate([v[sl], v[sl]])[:, None, :])
-        prod = outer.reshape(-1, dd * dd) @ blocks
-        h = prod.shape[0] // 2
-        f[sl] = kap * prod[:h]
-        g[sl] = kap * prod[h:]
+        bv = (v[sl] @ bt).reshape(-1, p, dd)
+        f[sl] = np.matmul(bv, u[sl, :, None])[:, :, 0]
+        g[sl] = np.matmul(bv, u_id[sl, :, None])[:, :, 0]
+    f *= kap
+    g *= kap
     return f, g
 
 

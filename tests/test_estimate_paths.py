@@ -38,6 +38,10 @@ def test_signed_permutation_propagation_equals_dense_products(n):
     final = random_channel(n, 0.2, rng).ptm  # a dense final map, as in interleaved mode
     np.testing.assert_allclose(est._propagate(steps, probes, final, e0), _dense_reference(steps, probes, final, e0),
                                atol=1e-13)
+    # the identity probe alone (long lengths) skips the probe step
+    ident = np.eye(d2)[None]
+    np.testing.assert_allclose(est._propagate(steps, ident, None, e0), _dense_reference(steps, ident, None, e0),
+                               atol=1e-13)
     # dense (non-Clifford) probes take the matrix-product path
     dense = np.stack([rotation("X" * n, 0.3).ptm, rotation("Z" * n, 0.2).ptm])
     np.testing.assert_allclose(est._propagate(steps, dense, None, e0), _dense_reference(steps, dense, None, e0),
