@@ -297,6 +297,8 @@ def summary_table(rec: Any) -> str:
         lines.append(f"{name:<{width}}  {_fmt(iv.value):>10}  {_fmt_ci(iv)}")
     span = f.diamond_distance_range
     kind = "bound" if span.high_is_bound else "attained"
+    if span.high_is_bound and math.isfinite(span.attained_max):
+        kind += f"; largest attained {_fmt(span.attained_max)}"
     lines.append(f"{'diamond distance range':<{width}}  {'':>10}  [{_fmt(span.low)}, {_fmt(span.high)}] "
                  f"(upper end {kind}; over channels consistent with the data)")
     if rec.classic_interleaved is not None:
@@ -619,7 +621,9 @@ def _html(rec: Any, figs: Mapping[str, bytes], plan: Any) -> str:
          "0 = perfect; worst-case error probability, (1/2)||E - U||"),
         ("diamond distance range", "", f"[{_fmt(span.low)}, {_fmt(span.high)}]",
          f"min and max over CPTP channels that fit the data (upper end "
-         f"{'a certified bound' if span.high_is_bound else 'attained by a channel'}): {span.method}"),
+         f"{'a certified bound' if span.high_is_bound else 'attained by a channel'}"
+         f"{'; the largest value attained by a channel found is ' + _fmt(span.attained_max) if span.high_is_bound and math.isfinite(span.attained_max) else ''}"
+         f"): {span.method}"),
         ("unitarity", _fmt(f.unitarity.value), _fmt_ci(f.unitarity), "1 for a purely coherent error"),
         ("coherent share of the infidelity", _fmt(f.coherent_share.value, 3), _fmt_ci(f.coherent_share, 3),
          "fraction due to the Hamiltonian part of the error generator"),

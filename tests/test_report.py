@@ -287,6 +287,21 @@ def test_summary_table_text(rec1, rec2_interleaved):
     assert "classic interleaved" in summary_table(rec2_interleaved)
 
 
+def test_range_bound_shows_the_largest_attained_value(rec1):
+    import dataclasses
+
+    from robusttomo.assess import DiamondSpan
+
+    bound = DiamondSpan(0.01, 1.0, True, "test", attained_max=0.1436, certified_max=1.0)
+    rec = dataclasses.replace(rec1, figures=dataclasses.replace(rec1.figures, diamond_distance_range=bound))
+    line = [x for x in summary_table(rec).splitlines() if x.startswith("diamond distance range")][0]
+    assert "[0.01000, 1.00000]" in line and "upper end bound; largest attained 0.14360" in line
+    attained = DiamondSpan(0.01, 0.2, False, "test", attained_max=0.2)
+    rec = dataclasses.replace(rec1, figures=dataclasses.replace(rec1.figures, diamond_distance_range=attained))
+    line = [x for x in summary_table(rec).splitlines() if x.startswith("diamond distance range")][0]
+    assert "upper end attained;" in line and "largest attained" not in line
+
+
 # ---- rendering in a real browser --------------------------------------------------------------
 _PROBE = """<script>
 window.__rt = {errors: []};
