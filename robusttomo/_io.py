@@ -18,7 +18,7 @@ def check_output_path(path: str | os.PathLike[str], *, force: bool) -> Path:
     """Refuse to overwrite an existing file unless ``force``; return the path."""
     p = Path(path)
     if p.exists() and not force:
-        raise FileExistsError(f"{p}: output exists; choose another name or pass --force (force=True) to overwrite")
+        raise FileExistsError(f"{p}: output exists; choose another name or pass --force (in Python force=True) to overwrite")
     if not p.parent.exists():
         raise DataError(f"{p}: directory {p.parent} does not exist; create it first")
     return p

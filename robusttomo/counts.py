@@ -486,7 +486,7 @@ def _ingest_h5(plan: Any, p: Path, *, allow_missing: bool) -> Counts:
     missing = np.setdiff1d(plan_ids, c.sequence_ids)
     if missing.size and not allow_missing:
         raise DataError(f"{p}: {missing.size} plan sequence(s) have no data, e.g. ids {missing[:5].tolist()}; "
-                        "pass allow_missing=True to accept partial data")
+                        "pass --allow-missing (in Python allow_missing=True) to accept partial data")
     if missing.size == c.missing_ids.size and np.array_equal(missing, c.missing_ids):
         return c
     return Counts(n_qubits=c.n_qubits, plan_fingerprint=c.plan_fingerprint, sequence_ids=c.sequence_ids,
@@ -676,7 +676,7 @@ class _Ingest:
         missing = np.setdiff1d(self.plan_ids, ids)
         if missing.size and not allow_missing:
             raise DataError(f"{self.path}: {missing.size} plan sequence(s) have no data, e.g. ids "
-                            f"{missing[:5].tolist()}; pass allow_missing=True to accept partial data")
+                            f"{missing[:5].tolist()}; pass --allow-missing (in Python allow_missing=True) to accept partial data")
         if ids.size == 0:
             raise DataError(f"{self.path}: the file holds no counts at all")
         if missing.size:

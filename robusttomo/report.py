@@ -758,7 +758,7 @@ def write_report(rec: Any, directory: str | os.PathLike[str], *, force: bool = F
         for name in names:
             if (out / name).exists():
                 raise FileExistsError(f"{out / name}: output exists; choose another directory or pass --force "
-                                      "(force=True) to overwrite")
+                                      "(in Python force=True) to overwrite")
     summary = report_summary(rec)
     text = json.dumps(summary, indent=1, allow_nan=False) + "\n"
     figs = _figures(rec)

@@ -254,7 +254,7 @@ def ingest_text(tmp_path, text, suffix=".csv", **kw):
 def test_ingest_allow_missing_reports_missing(tmp_path):
     counts = small_counts()
     text = "\n".join(line for line in csv_text(counts).splitlines() if not line.startswith(("0,", "4,")))
-    with pytest.raises(DataError, match=r"2 plan sequence\(s\) have no data, e.g. ids \[0, 4\]; pass allow_missing"):
+    with pytest.raises(DataError, match=r"2 plan sequence\(s\) have no data, e.g. ids \[0, 4\]; pass --allow-missing \(in Python allow_missing"):
         ingest_text(tmp_path, text)
     got = ingest_text(tmp_path, text, allow_missing=True)
     assert got.missing_ids.tolist() == [0, 4] and "2 sequence(s) missing" in got.source
