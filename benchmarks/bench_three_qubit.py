@@ -92,9 +92,16 @@ def analyze_child(sequences: int) -> None:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         rec, cpu, wall = _timed(lambda: rt.analyze(plan, counts, bootstrap=0, models=False, ranges=False))
+    from robusttomo.channels import random_channel
+
+    truth = random_channel(3, 0.1, np.random.default_rng(3))  # experiment()'s device error (seed 3)
+    err = float(np.linalg.norm(rec.error_channel.unital_block - truth.unital_block))
+    lin = float(np.linalg.norm(rec.linear_unital_block - truth.unital_block))
     print(f"analyze(3 qubits, {sum(b.n_sequences for b in plan.blocks)} sequences, bootstrap=0, models=False, "
-          f"ranges=False): {cpu:.1f} s CPU ({wall:.1f} s wall), peak RSS {_rss_mb():.0f} MB, solver {rec.solver}",
-          flush=True)
+          f"ranges=False): {cpu:.1f} s CPU ({wall:.1f} s wall), peak RSS {_rss_mb():.0f} MB, solver {rec.solver} "
+          f"({rec.solver_status}); unital-block error {err:.3f} (linear estimate {lin:.3f}); average gate "
+          f"fidelity {rec.figures.average_gate_fidelity.value:.5f} (true "
+          f"{rt.average_gate_fidelity(truth):.5f})", flush=True)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -111,7 +118,7 @@ def main(argv: list[str] | None = None) -> int:
     for line in stages(args.sequences):
         print(line, flush=True)
     if args.analyze:
-        k = min(x for x in args.sequences if x > 0)
+        k = min((x for x in args.sequences if x > 0), default=0)  # 0 alone: the default plan
         cmd = [sys.executable, __file__, "--child", str(k)]
         t0 = time.perf_counter()
         try:

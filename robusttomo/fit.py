@@ -424,16 +424,22 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
         x = corrected[li] - corrected[li].mean(axis=0)
         k = x.shape[0]
         scale = 1.0 / (k * (k - 1)) if k > 1 else float("nan")  # np.cov(ddof=1) / k
+        shrink = _shrinkage(x)
+        # S -> (1 - shrink) S + shrink diag(S), applied to every product with S below
+        var = scale * np.einsum("ki,ki->i", x, x)  # diag(S) / k
         xa = x @ alpha
-        meat[0, 0] += scale * float(xa @ xa)
+        meat[0, 0] += (1 - shrink) * scale * float(xa @ xa) + shrink * float(np.sum(alpha**2 * var))
         if pr is None:
             continue
         xb = x * beta
-        cross = scale * (xa @ xb)
+        cross = (1 - shrink) * scale * (xa @ xb) + shrink * alpha * beta * var
         meat[0, 1 + pr] += cross
         meat[1 + pr, 0] += cross
         gram = xb.T @ xb
         gram *= scale
+        if shrink > 0:
+            gram *= 1 - shrink
+            gram[np.diag_indices_from(gram)] += shrink * beta**2 * var
         if pr.size == p and np.array_equal(pr, np.arange(p)):
             meat[1:, 1:] += gram
         else:
@@ -452,6 +458,40 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
     cov += left[:, None] * z[None, :]
     cov += z[:, None] * right[None, :]
     return cov, chi2, max(dof, 0), res / sg
+
+
+def _shrinkage(x: np.ndarray) -> float:
+    """Shrinkage of a length's sample covariance towards its diagonal, 0 when it is not needed.
+
+    ``x`` (K, Q): the centred per-sequence values of one length.  With ``K - 1 >= Q`` the sample
+    covariance has full rank and is kept (0).  With fewer sequences than values it is singular
+    (the chi-square regions and weights of the reconstruction would then be meaningless), and
+    the off-diagonal part is shrunk by the estimated optimal intensity of "A shrinkage approach
+    to large-scale covariance matrix estimation and implications for functional genomics",
+    Statistical Applications in Genetics and Molecular Biology 4, 32 (2005) (target D, the
+    diagonal): ``sum_(i!=j) Var(r_ij) / sum_(i!=j) r_ij**2`` on the standardized values,
+    clipped to [0, 1].
+    """
+    k, q = x.shape
+    if q < 2 or k - 1 >= q:
+        return 0.0
+    if k < 3:
+        return 1.0
+    sd = np.sqrt(np.einsum("ki,ki->i", x, x) / (k - 1))
+    z = x[:, sd > 0] / sd[sd > 0]
+    q = z.shape[1]
+    # sums over all (i, j) from K x K and K-vector products (K < Q): no Q x Q array is formed
+    gram = z @ z.T
+    r2_all = float(np.sum(gram * gram)) / (k - 1) ** 2  # sum_ij r_ij**2, r_ii = 1
+    z2 = z * z
+    w2_all = float(np.sum(np.sum(z2, axis=1) ** 2))  # sum_ij sum_k z_ki**2 z_kj**2
+    w2_diag = float(np.sum(z2 * z2))
+    den = r2_all - q
+    if not den > 0:
+        return 1.0
+    wbar2_off = ((k - 1) / k) ** 2 * den  # sum_(i!=j) mean_k(z_ki z_kj)**2
+    num = (k / (k - 1) ** 3) * ((w2_all - w2_diag) - k * wbar2_off)
+    return float(np.clip(num / den, 0.0, 1.0))
 
 
 def _arrowhead_ok(h00: float, h0p: np.ndarray, hpp: np.ndarray, on: np.ndarray, e: np.ndarray, zt: np.ndarray,
@@ -485,6 +525,9 @@ def _sandwich_dense(design: _Design, corr: Correlations, c: float, lam: np.ndarr
     for li, m in enumerate(lengths):
         k = corrected[li].shape[0]
         cov = np.atleast_2d(np.cov(corrected[li], rowvar=False, ddof=1)) / k
+        shrink = _shrinkage(corrected[li] - corrected[li].mean(axis=0))
+        if shrink > 0:
+            cov = (1 - shrink) * cov + shrink * np.diag(np.diag(cov))
         if m == 1:
             jrow = np.zeros((1, p + 1))
             jrow[0, 0] = 1.0

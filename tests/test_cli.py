@@ -18,6 +18,7 @@ from robusttomo._version import __version__
 from robusttomo.counts import load_counts
 from robusttomo.export import FORMATS, load_channel
 from robusttomo.plan import load_plan
+from robusttomo.assess import load_reconstruction
 
 ROOT = Path(__file__).resolve().parents[1]
 SUBCOMMANDS = ("plan", "simulate", "ingest", "analyze", "report", "export", "demo")
@@ -142,6 +143,17 @@ def test_analyze_prints_table_and_json(capsys, work, tmp_path):
     agf = doc["summary"]["average_gate_fidelity"]
     assert agf["ci95"][0] <= agf["value"] <= agf["ci95"][1]
     assert doc["requirement"] is None and doc["result"] == str(tmp_path / "r2.h5")
+
+
+def test_analyze_without_ranges(capsys, work, tmp_path):
+    code, out, _ = run(capsys, "analyze", str(work / "plan.h5"), str(work / "counts.h5"), "-o",
+                       str(tmp_path / "n.h5"), "--bootstrap", "5", "--seed", "1", "--no-ranges", "--no-models",
+                       "--quiet")
+    assert code == 0
+    rec = load_reconstruction(tmp_path / "n.h5")
+    assert np.all(np.isnan(rec.nonunital_ranges))
+    assert "not computed (ranges=False)" in rec.figures.diamond_distance_range.method
+    assert "[n/a, n/a]" in [ln for ln in out.splitlines() if ln.startswith("diamond distance range")][0]
 
 
 def test_require_fidelity_exit_status(capsys, work, tmp_path):
