@@ -424,20 +424,24 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
         x = corrected[li] - corrected[li].mean(axis=0)
         k = x.shape[0]
         scale = 1.0 / (k * (k - 1)) if k > 1 else float("nan")  # np.cov(ddof=1) / k
+        # with fewer sequences than values: S -> (1 - shrink) S + shrink diag(S) in every product
         shrink = _shrinkage(x)
-        # S -> (1 - shrink) S + shrink diag(S), applied to every product with S below
-        var = scale * np.einsum("ki,ki->i", x, x)  # diag(S) / k
+        var = scale * np.einsum("ki,ki->i", x, x) if shrink > 0 else None  # diag(S) / k
         xa = x @ alpha
-        meat[0, 0] += (1 - shrink) * scale * float(xa @ xa) + shrink * float(np.sum(alpha**2 * var))
+        meat[0, 0] += scale * float(xa @ xa) * (1 - shrink)
+        if var is not None:
+            meat[0, 0] += shrink * float(np.sum(alpha**2 * var))
         if pr is None:
             continue
         xb = x * beta
-        cross = (1 - shrink) * scale * (xa @ xb) + shrink * alpha * beta * var
+        cross = scale * (xa @ xb)
+        if var is not None:
+            cross = (1 - shrink) * cross + shrink * alpha * beta * var
         meat[0, 1 + pr] += cross
         meat[1 + pr, 0] += cross
         gram = xb.T @ xb
         gram *= scale
-        if shrink > 0:
+        if var is not None:
             gram *= 1 - shrink
             gram[np.diag_indices_from(gram)] += shrink * beta**2 * var
         if pr.size == p and np.array_equal(pr, np.arange(p)):
