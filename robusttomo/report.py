@@ -597,6 +597,9 @@ def _html(rec: Any, figs: Mapping[str, bytes], plan: Any) -> str:
     span = f.diamond_distance_range
     title = (f"Error of gate {rec.target_label}" if rec.mode.value == "interleaved"
              else "Error channel after every Clifford")
+    upper_kind = "a certified bound" if span.high_is_bound else "attained by a channel"
+    if span.high_is_bound and math.isfinite(span.attained_max):
+        upper_kind += f"; the largest value attained by a channel found is {_fmt(span.attained_max)}"
     parts: list[str] = []
     parts.append(f"<header><h1>robusttomo report: {_e(title)}</h1>"
                  f'<p class="sub">{rec.n_qubits} qubit{"s" if rec.n_qubits > 1 else ""}, '
@@ -620,10 +623,7 @@ def _html(rec: Any, figs: Mapping[str, bytes], plan: Any) -> str:
         ("diamond distance", _fmt(f.diamond_distance.value), _fmt_ci(f.diamond_distance),
          "0 = perfect; worst-case error probability, (1/2)||E - U||"),
         ("diamond distance range", "", f"[{_fmt(span.low)}, {_fmt(span.high)}]",
-         f"min and max over CPTP channels that fit the data (upper end "
-         f"{'a certified bound' if span.high_is_bound else 'attained by a channel'}"
-         f"{'; the largest value attained by a channel found is ' + _fmt(span.attained_max) if span.high_is_bound and math.isfinite(span.attained_max) else ''}"
-         f"): {span.method}"),
+         f"min and max over CPTP channels that fit the data (upper end {upper_kind}): {span.method}"),
         ("unitarity", _fmt(f.unitarity.value), _fmt_ci(f.unitarity), "1 for a purely coherent error"),
         ("coherent share of the infidelity", _fmt(f.coherent_share.value, 3), _fmt_ci(f.coherent_share, 3),
          "fraction due to the Hamiltonian part of the error generator"),
