@@ -421,7 +421,7 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
             bootstrap: int = 200, seed: int | None = None, probes: ProbeSet | None = None,
             control_variate: bool = True, models: bool = True, ranges: bool = True,
             diamond: bool = True, jobs: int = 1,
-            solver: str = "SCS", progress: object = None) -> Reconstruction:
+            solver: str = "SCS", progress: object = None, refits: bool = True) -> Reconstruction:
     """Reconstruct the error channel and its figures of merit with 95% intervals.
 
     Reference mode (a plan without an interleaved gate): the error channel ``L`` after every
@@ -467,6 +467,11 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     diamond : bool, default True
         Compute the diamond distance (one semidefinite program per bootstrap replicate);
         ``False`` reports it as NaN, for fast studies of the other figures.
+    refits : bool, default True
+        Re-fit the CPTP channel in every bootstrap replicate.  ``False`` keeps only the decay
+        bootstrap (cheap): in reference mode the fidelities and ``decay_fidelity`` still get
+        their (studentized) intervals, every other figure's interval is NaN; in interleaved
+        mode only ``decay_fidelity``.  For large problems (three qubits) or fidelity-only use.
     jobs : int, default 1
         Worker processes for the convex stages after the point fit (range programs, groups of
         bootstrap re-fits, models), which run in parallel when ``jobs > 1``.  The default is 1
@@ -494,6 +499,8 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     """
     if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
         raise ValueError(f"'jobs' must be a positive integer; got {jobs!r}")
+    if not isinstance(refits, (bool, np.bool_)):
+        raise TypeError(f"'refits' must be True or False; got {refits!r}")
 
     def tick(stage: str, done: int, total: int) -> None:
         if progress is not None:
@@ -502,6 +509,8 @@ def analyze(plan: object, counts: object, *, target: object = None, reference: t
     prep = _prepare_analysis(plan, counts, target=target, reference=reference, bootstrap=bootstrap, seed=seed,
                              probes=probes, control_variate=control_variate, models=models, ranges=ranges,
                              diamond=diamond, solver=solver, tick=tick)
+    if not refits:
+        prep = _dc.replace(prep, refits=False)
     try:
         if jobs == 1:
             results = _run_parts_here(prep, _analysis_parts(prep, groups=1), tick)
@@ -570,6 +579,7 @@ class _Prepared:
     main_state: dict
     plan_fingerprint: str
     counts_fingerprint: str
+    refits: bool = True  # False: the decay bootstrap only, no CPTP re-fit per replicate
 
     @property
     def replicate_diamond(self) -> bool:
@@ -735,7 +745,7 @@ def _parts_for(*, bootstrap: int, models: bool, ranges: bool, diamond: bool, gro
 
 def _analysis_parts(prep: _Prepared, *, groups: int) -> list[tuple]:
     """:func:`_parts_for` with the options of a prepared analysis."""
-    return _parts_for(bootstrap=prep.bootstrap, models=prep.models, ranges=prep.ranges, diamond=prep.diamond,
+    return _parts_for(bootstrap=prep.bootstrap if prep.refits else 0, models=prep.models, ranges=prep.ranges, diamond=prep.diamond,
                       groups=groups)
 
 
@@ -1008,7 +1018,7 @@ def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Rec
         span = DiamondSpan(float("nan"), float("nan"), True, "not computed (ranges=False)")
     point = by_kind["point"][0]["figures"]
     reps = (_merge_replicate_groups([r["arrays"] for r in by_kind.get("replicates", [])], prep.bootstrap)  # type: ignore[misc]
-            if prep.bootstrap > 0 else None)
+            if prep.bootstrap > 0 and prep.refits else None)
     labels = _pauli.pauli_labels(n)
 
     def rep(key: str) -> np.ndarray | None:
@@ -1033,7 +1043,7 @@ def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Rec
     agf_iv = _interval(point["agf"], rep("agf"))  # type: ignore[arg-type,index]
     ef_iv = _interval(point["ef"], rep("ef"))  # type: ignore[arg-type,index]
     dfid_iv = _interval(dfid_value, dfid)
-    if not prep.interleaved and reps is not None:
+    if not prep.interleaved and dec_ref.bootstrap_lambdas is not None:
         # reference mode: the anchored estimate's trace is the identity decay's, so both
         # fidelities are increasing affine maps of it and take its studentized interval
         lo, hi = dec_ref.identity_decay_interval()
@@ -1070,7 +1080,7 @@ def _assemble_analysis(prep: _Prepared, results: list[dict[str, object]]) -> Rec
     fit_main = prep.fit_main
     opts = {"bootstrap": prep.bootstrap, "seed": -1 if prep.seed is None else int(prep.seed),
             "control_variate": prep.control_variate, "probes": f"{dec_ref.probes.n_probes} probes",
-            "solver": prep.solver}
+            "solver": prep.solver, "refits": bool(prep.refits)}
     return Reconstruction(
         n_qubits=n, mode=AnalysisMode.INTERLEAVED if prep.interleaved else AnalysisMode.REFERENCE,
         target_label=prep.label, target_unitary=np.asarray(prep.gate, dtype=complex), error_channel=err,

@@ -390,16 +390,18 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
         ref_plan = _load_plan(args.reference[0])
         reference = (ref_plan, _load_counts_for(ref_plan, args.reference[0], args.reference[1]))
     _check_outputs(args, args.output)
-    if plan.n_qubits >= 3 and (args.bootstrap > 0 or not args.no_ranges or not args.no_models):
+    if plan.n_qubits >= 3 and ((args.bootstrap > 0 and not args.no_refits) or not args.no_ranges
+                               or not args.no_models):
         # each replicate, range program and model fit costs about as much as the point fit
         sys.stderr.write(f"{_PROG} analyze: note: three qubits: the point fit takes minutes and several GB, and "
                          "every bootstrap replicate, range program and model fit about as much again; for the "
-                         "point estimate alone use --bootstrap 0 --no-ranges --no-models\n")
+                         "point estimate alone use --no-refits --no-ranges --no-models (the fidelities keep their "
+                         "intervals)\n")
     prog = _progress(args)
     try:
         rec = analyze(plan, counts, reference=reference, bootstrap=args.bootstrap, seed=args.seed,
                       jobs=args.jobs, models=not args.no_models, ranges=not args.no_ranges,
-                      progress=prog.callback)
+                      refits=not args.no_refits, progress=prog.callback)
     finally:
         prog.close()
     save_reconstruction(rec, args.output, force=args.force)
@@ -590,6 +592,9 @@ def _parser() -> argparse.ArgumentParser:
                     help="exit with status 3 when the lower end of the 95%% interval of the average gate "
                          "fidelity is below X")
     sp.add_argument("--no-models", action="store_true", help="skip the reduced models (faster)")
+    sp.add_argument("--no-refits", action="store_true",
+                    help="bootstrap the decays only, no CPTP re-fit per replicate (much faster; only the "
+                         "fidelities keep their intervals)")
     sp.add_argument("--no-ranges", action="store_true",
                     help="skip the ranges over the channels consistent with the data (faster; the diamond "
                          "distance then gets the bootstrap interval)")

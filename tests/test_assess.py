@@ -192,3 +192,21 @@ def test_range_solver_failure_is_reported(monkeypatch):
     dd = rec.figures.diamond_distance
     assert np.isfinite(dd.value) and np.isnan(dd.low) and np.isnan(dd.high)
     assert np.isfinite(rec.figures.average_gate_fidelity.low)
+
+
+def test_decay_bootstrap_only_keeps_the_fidelity_intervals():
+    # refits=False skips the CPTP re-fits; the reference-mode fidelity intervals come from the
+    # identity decay's bootstrap alone, so they equal those of the full analysis (same seed)
+    plan = rt.make_plan(n_qubits=1, lengths=(1, 2, 3, 6, 12), sequences=60, seed=5)
+    dev = rt.Device.build(1, error=rotation("X", 0.08) @ depolarizing(1, 0.99), readout=[(0.02, 0.03)])
+    counts = rt.simulate(plan, dev, seed=6)
+    full = rt.analyze(plan, counts, bootstrap=30, seed=7, models=False, ranges=False)
+    fast = rt.analyze(plan, counts, bootstrap=30, seed=7, models=False, ranges=False, refits=False)
+    for name in ("average_gate_fidelity", "entanglement_fidelity", "decay_fidelity"):
+        a, b = getattr(full.figures, name), getattr(fast.figures, name)
+        assert np.isfinite(b.low) and (a.value, a.low, a.high) == (b.value, b.low, b.high)
+    assert np.isnan(fast.figures.unitarity.low) and np.isnan(fast.figures.diamond_distance.low)
+    assert np.isfinite(full.figures.unitarity.low)
+    assert np.isnan(fast.unital_block_error) and fast.options["refits"] is False
+    with pytest.raises(TypeError, match="'refits' must be True or False"):
+        rt.analyze(plan, counts, bootstrap=0, refits="no")

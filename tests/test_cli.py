@@ -145,15 +145,18 @@ def test_analyze_prints_table_and_json(capsys, work, tmp_path):
     assert doc["requirement"] is None and doc["result"] == str(tmp_path / "r2.h5")
 
 
-def test_analyze_without_ranges(capsys, work, tmp_path):
+def test_analyze_without_ranges_and_refits(capsys, work, tmp_path):
     code, out, _ = run(capsys, "analyze", str(work / "plan.h5"), str(work / "counts.h5"), "-o",
                        str(tmp_path / "n.h5"), "--bootstrap", "5", "--seed", "1", "--no-ranges", "--no-models",
-                       "--quiet")
+                       "--no-refits", "--quiet")
     assert code == 0
     rec = load_reconstruction(tmp_path / "n.h5")
     assert np.all(np.isnan(rec.nonunital_ranges))
     assert "not computed (ranges=False)" in rec.figures.diamond_distance_range.method
     assert "[n/a, n/a]" in [ln for ln in out.splitlines() if ln.startswith("diamond distance range")][0]
+    # decay bootstrap only: the fidelity keeps its interval, the unitarity has none
+    assert rec.options["refits"] is False and np.isfinite(rec.figures.average_gate_fidelity.low)
+    assert np.isnan(rec.figures.unitarity.low)
 
 
 def test_require_fidelity_exit_status(capsys, work, tmp_path):
