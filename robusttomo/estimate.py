@@ -485,39 +485,26 @@ def _filtered(r: np.ndarray, zw: np.ndarray, d: int) -> np.ndarray:
 def _length_two_values(phys: np.ndarray, u: np.ndarray, u_id: np.ndarray, v: np.ndarray, kap: float):
     """Per-sequence length-2 values ``kappa u_s^T B_p v_s`` of every probe, measured and ideal.
 
-    With few probe entries (one and two qubits): one matrix product per chunk of sequences,
-    ``v (K, D) @ [B_p^T] (D, P*D)``, gives every ``B_p v_s``, and the measured and ideal values
-    are two batched dot products that share it.  With many (three qubits, ``P*D`` of 2.5e5) a
-    chunk would hold only a few sequences and re-read the whole probe matrix each time, so
-    there the flattened outer products ``u_s v_s^T`` ``(2K, D*D)`` multiply the flattened
-    blocks ``(D*D, P)`` instead (no ``(K, P, D)`` intermediate).  Returns f, g, each (K, P).
+    One matrix product per chunk of sequences: the flattened outer products ``u_s v_s^T``
+    ``(2K, D*D)`` (measured and ideal) times the flattened unital blocks ``(D*D, P)``, so no
+    ``(K, P, D)`` intermediate is formed.  (Sharing one product ``v @ [B_p^T]`` between the
+    measured and ideal values was measured 7% slower for two qubits and much slower for three,
+    docs/benchmarks.md.)  Returns f, g, each (K, P).
     """
     p = phys.shape[0]
     dd = u.shape[1]
+    blocks = phys[:, 1:, 1:].reshape(p, dd * dd).T  # (D*D, P); a copy: the slice is strided
     k = u.shape[0]
     f = np.empty((k, p))
     g = np.empty((k, p))
-    if 64 * p * dd <= _CHUNK_ELEMENTS:
-        # bt[j, p*D + i] = B_p[i, j], so (v @ bt)[s, p*D + i] = (B_p v_s)_i
-        bt = np.ascontiguousarray(np.transpose(phys[:, 1:, 1:], (2, 0, 1))).reshape(dd, p * dd)
-        kc = max(1, _CHUNK_ELEMENTS // (p * dd))
-        for a in range(0, k, kc):
-            sl = slice(a, a + kc)
-            bv = (v[sl] @ bt).reshape(-1, p, dd)
-            f[sl] = np.matmul(bv, u[sl, :, None])[:, :, 0]
-            g[sl] = np.matmul(bv, u_id[sl, :, None])[:, :, 0]
-    else:
-        blocks = phys[:, 1:, 1:].reshape(p, dd * dd).T  # (D*D, P); a copy: the slice is strided
-        kc = max(1, _CHUNK_ELEMENTS // (2 * max(p, dd * dd)))
-        for a in range(0, k, kc):
-            sl = slice(a, a + kc)
-            outer = (np.concatenate([u[sl], u_id[sl]])[:, :, None] * np.concatenate([v[sl], v[sl]])[:, None, :])
-            prod = outer.reshape(-1, dd * dd) @ blocks
-            h = prod.shape[0] // 2
-            f[sl] = prod[:h]
-            g[sl] = prod[h:]
-    f *= kap
-    g *= kap
+    kc = max(1, _CHUNK_ELEMENTS // (2 * max(p, dd * dd)))
+    for a in range(0, k, kc):
+        sl = slice(a, a + kc)
+        outer = (np.concatenate([u[sl], u_id[sl]])[:, :, None] * np.concatenate([v[sl], v[sl]])[:, None, :])
+        prod = outer.reshape(-1, dd * dd) @ blocks
+        h = prod.shape[0] // 2
+        f[sl] = kap * prod[:h]
+        g[sl] = kap * prod[h:]
     return f, g
 
 
