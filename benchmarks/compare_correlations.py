@@ -17,7 +17,6 @@ import argparse
 import importlib.util
 import os
 import sys
-import time
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -40,15 +39,6 @@ def _load_other(directory: Path):
     sys.modules["other_estimate"] = mod
     spec.loader.exec_module(mod)  # type: ignore[union-attr]
     return mod
-
-
-def _best(fn, repeats: int) -> float:
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -77,8 +67,8 @@ def main(argv: list[str] | None = None) -> int:
         repeats = 3 if n == 3 else max(5, 3000 // total)
         t_this = t_other = float("inf")
         for _ in range(2):  # alternate, so that a change of load hits both
-            t_other = min(t_other, _best(lambda: other.compute_correlations(plan, counts, probes=probes), repeats))
-            t_this = min(t_this, _best(lambda: this.compute_correlations(plan, counts, probes=probes), repeats))
+            t_other = min(t_other, ss._best(lambda: other.compute_correlations(plan, counts, probes=probes), repeats))
+            t_this = min(t_this, ss._best(lambda: this.compute_correlations(plan, counts, probes=probes), repeats))
         floor = ss.floor_seconds(a)["total"]
         print(f"| {n} | {total} | {t_other * 1e3:.3f} | {t_this * 1e3:.3f} | {t_other / t_this:.2f} | "
               f"{floor * 1e3:.3f} | {t_other / floor:.2f} | {t_this / floor:.2f} | {diff:.1e} |", flush=True)
