@@ -386,7 +386,8 @@ def _gn_stderr(design: _Design, corr: Correlations, c: float, lam: np.ndarray, s
     return float(math.sqrt(var)) if var > 0 else float("nan")
 
 
-def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
+def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected,
+              shrink_covariance: bool = True):
     """Covariance of (c, lambdas) by the sandwich formula, plus chi2 and normalized residuals.
 
     ``cov = H^+ (J^T W S W J) H^+`` with ``H = J^T W J``, ``W = diag(1/stderr**2)`` and ``S`` the
@@ -417,15 +418,15 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
     zt = -h0p * e
     schur = h00 + float(np.sum(h0p * zt))
     if not _arrowhead_ok(h00, h0p, hpp, on, e, zt, schur):
-        return _sandwich_dense(design, corr, c, lam, means, sig, corrected)
+        return _sandwich_dense(design, corr, c, lam, means, sig, corrected, shrink_covariance)
 
     meat = np.zeros((p + 1, p + 1))
     for li, (pr, alpha, beta) in enumerate(parts):
         x = corrected[li] - corrected[li].mean(axis=0)
         k = x.shape[0]
         scale = 1.0 / (k * (k - 1)) if k > 1 else float("nan")  # np.cov(ddof=1) / k
-        # with fewer sequences than values: S -> (1 - shrink) S + shrink diag(S) in every product
-        shrink = _shrinkage(x)
+        # S -> (1 - shrink) S + shrink diag(S) in every product (_shrinkage)
+        shrink = _shrinkage(x) if shrink_covariance else 0.0
         var = scale * np.einsum("ki,ki->i", x, x) if shrink > 0 else None  # diag(S) / k
         xa = x @ alpha
         meat[0, 0] += scale * float(xa @ xa) * (1 - shrink)
@@ -465,28 +466,35 @@ def _sandwich(design: _Design, corr: Correlations, c: float, lam: np.ndarray, me
 
 
 def _shrinkage(x: np.ndarray) -> float:
-    """Shrinkage of a length's sample covariance towards its diagonal, 0 when it is not needed.
+    """Shrinkage intensity of a length's sample covariance towards its diagonal.
 
-    ``x`` (K, Q): the centred per-sequence values of one length.  With ``K - 1 >= Q`` the sample
-    covariance has full rank and is kept (0).  With fewer sequences than values it is singular
-    (the chi-square regions and weights of the reconstruction would then be meaningless), and
-    the off-diagonal part is shrunk by the estimated optimal intensity of "A shrinkage approach
-    to large-scale covariance matrix estimation and implications for functional genomics",
-    Statistical Applications in Genetics and Molecular Biology 4, 32 (2005) (target D, the
-    diagonal): ``sum_(i!=j) Var(r_ij) / sum_(i!=j) r_ij**2`` on the standardized values,
-    clipped to [0, 1].
+    ``x`` (K, Q): the centred per-sequence values of one length.  The off-diagonal part is
+    shrunk by the estimated optimal intensity of "A shrinkage approach to large-scale covariance
+    matrix estimation and implications for functional genomics", Statistical Applications in
+    Genetics and Molecular Biology 4, 32 (2005) (target D, the diagonal):
+    ``sum_(i!=j) Var(r_ij) / sum_(i!=j) r_ij**2`` on the standardized values, clipped to [0, 1].
+
+    Needed with fewer sequences than values (the sample covariance is then singular), and also
+    when the two are of the same order: the inverse of a sample covariance of ``Q`` values from
+    ``K`` sequences overstates the precision by about ``(K - 1) / (K - Q - 2)`` (the mean of an
+    inverse Wishart matrix), 1.8 for the 225 length-2 values of 500 sequences of the default
+    two-qubit plan, which inflated every chi-square of the reconstruction by that factor and
+    biased its diamond distance low (docs/method-estimation.md).  With ``K >> Q`` the estimated
+    intensity is small by itself.
     """
     k, q = x.shape
-    if q < 2 or k - 1 >= q:
+    if q < 2:
         return 0.0
     if k < 3:
         return 1.0
     sd = np.sqrt(np.einsum("ki,ki->i", x, x) / (k - 1))
     z = x[:, sd > 0] / sd[sd > 0]
     q = z.shape[1]
-    # sums over all (i, j) from K x K and K-vector products (K < Q): no Q x Q array is formed
-    gram = z @ z.T
-    r2_all = float(np.sum(gram * gram)) / (k - 1) ** 2  # sum_ij r_ij**2, r_ii = 1
+    if q < 2:
+        return 0.0
+    # sum_ij r_ij**2 (r_ii = 1) from the smaller of the K x K and Q x Q Gram matrices
+    gram = z @ z.T if k < q else z.T @ z
+    r2_all = float(np.sum(gram * gram)) / (k - 1) ** 2
     z2 = z * z
     w2_all = float(np.sum(np.sum(z2, axis=1) ** 2))  # sum_ij sum_k z_ki**2 z_kj**2
     w2_diag = float(np.sum(z2 * z2))
@@ -515,7 +523,8 @@ def _arrowhead_ok(h00: float, h0p: np.ndarray, hpp: np.ndarray, on: np.ndarray, 
     return 1.0 / inv_norm > 1e-11 * lam_max
 
 
-def _sandwich_dense(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected):
+def _sandwich_dense(design: _Design, corr: Correlations, c: float, lam: np.ndarray, means, sig, corrected,
+                    shrink_covariance: bool = True):
     """Reference form of :func:`_sandwich` with dense Jacobian, bread and meat (``O(P**3)``).
 
     Used when the structured inverse would not match the pseudo-inverse (a near-singular bread).
@@ -529,7 +538,7 @@ def _sandwich_dense(design: _Design, corr: Correlations, c: float, lam: np.ndarr
     for li, m in enumerate(lengths):
         k = corrected[li].shape[0]
         cov = np.atleast_2d(np.cov(corrected[li], rowvar=False, ddof=1)) / k
-        shrink = _shrinkage(corrected[li] - corrected[li].mean(axis=0))
+        shrink = _shrinkage(corrected[li] - corrected[li].mean(axis=0)) if shrink_covariance else 0.0
         if shrink > 0:
             cov = (1 - shrink) * cov + shrink * np.diag(np.diag(cov))
         if m == 1:

@@ -700,7 +700,8 @@ def _lambda_covariance(run: _Run, alloc: Mapping[int, float], shots: float, cv: 
         rows.append(_rows_with_covariance(cov))
         sig.append(np.maximum(np.sqrt(np.clip(np.diag(cov), 0.0, None)), 1e-15))
         means.append(np.array([run.c]) if m == 1 else run.c * run.lambdas[st.probes] ** (m - 1))
-    cov, _, _, _ = _fit._sandwich(design, corr, run.c, run.lambdas, means, sig, rows)
+    # the rows stand for a predicted covariance, not for sequences: nothing to shrink
+    cov, _, _, _ = _fit._sandwich(design, corr, run.c, run.lambdas, means, sig, rows, shrink_covariance=False)
     return (cov + cov.T) / 2
 
 
