@@ -356,10 +356,32 @@ class Correlations:
         raise KeyError(f"no sequences of length {length}")
 
 
+@functools.lru_cache(maxsize=None)
 def _z_matrix(n: int) -> np.ndarray:
-    """``Z[x, i] = <x|P_i|x>``, shape ``(d, d*d)``."""
+    """``Z[x, i] = <x|P_i|x>``, shape ``(d, d*d)``, read-only (one per process)."""
     p = _pauli.pauli_stack(n)
-    return np.einsum("ixx->xi", p).real.copy()
+    return _readonly(np.einsum("ixx->xi", p).real)
+
+
+@functools.lru_cache(maxsize=None)
+def _eye(d2: int) -> np.ndarray:
+    """Read-only identity matrix (one per process)."""
+    return _readonly(np.eye(d2))
+
+
+def _probe_constants(probes: ProbeSet) -> tuple[np.ndarray, int | None]:
+    """``(mu_base, identity position)`` of a probe set, computed once per ProbeSet object.
+
+    ``mu_base[p] = (tr R_p - 1)/(d*d - 1)``.  Kept in the instance's ``__dict__`` (a
+    ProbeSet is frozen and its arrays are read-only when built by this module's constructors).
+    """
+    got = probes.__dict__.get("_constants")
+    if got is None or got[0] is not probes.ptms:
+        d2 = probes.ptms.shape[1]
+        mu = _readonly((np.einsum("pii->p", probes.ptms) - 1.0) / (d2 - 1))
+        got = (probes.ptms, mu, _identity_position(probes))
+        probes.__dict__["_constants"] = got
+    return got[1], got[2]
 
 
 #: Target size (array elements) of the per-chunk working arrays of the propagation.
@@ -454,6 +476,25 @@ def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray
     return r
 
 
+def _ideal_run(perm: np.ndarray, sign: np.ndarray, gate: np.ndarray | None, final: np.ndarray | None,
+               e0: np.ndarray) -> np.ndarray:
+    """Pauli vectors ``final W_m G ... G W_1 e0`` of the error-free sequences, ``(K, d2)``.
+
+    :func:`_propagate_signed` with the one probe ``G`` (the identity when None), without its
+    set-up: the short lengths of every run need only this.
+    """
+    k, m, d2 = perm.shape
+    r = sign[:, 0] * e0[perm[:, 0]]
+    if m > 1:
+        rows = np.arange(0, k * d2, d2)[:, None]
+        for t in range(1, m):
+            if gate is not None:
+                r = r @ gate.T
+            r = np.take(r, perm[:, t] + rows)  # flat gather: r[k, perm[k, t, i]]
+            r *= sign[:, t]
+    return r if final is None else r @ final.T
+
+
 def _propagate(step_ptms: np.ndarray, probe_ptms: np.ndarray, final: np.ndarray | None, e0: np.ndarray) -> np.ndarray:
     """Pauli vectors ``final W_m A W_(m-1) ... A W_1 e0`` for every sequence and probe.
 
@@ -521,13 +562,8 @@ def _identity_position(probes: ProbeSet) -> int | None:
     return probes.identity_index
 
 
-def _long_length(m: int, perm, sign, shots, zw, lam2, ident, n_probes: int, phys, lam_ideal, final, e0, z,
-                 d: int, mu_base) -> LengthStats:
-    """Statistics of one length ``m >= 3``: the information rule, then chunked propagation.
-
-    The ideal run (the error-free sequence, for the control variate) rides along with the
-    first chunk of probes, so long sequences are walked through once per chunk.
-    """
+def _kept_probes(m: int, lam2, ident, n_probes: int) -> np.ndarray:
+    """Probes propagated at length ``m >= 3``: the information rule on the length-2 estimates."""
     if lam2 is None:
         sel = np.arange(n_probes) if ident is None else np.array([ident])
     else:
@@ -535,7 +571,15 @@ def _long_length(m: int, perm, sign, shots, zw, lam2, ident, n_probes: int, phys
         if ident is not None:
             keep[ident] = True
         sel = np.flatnonzero(keep)
-    sel = sel.astype(np.int64)
+    return sel.astype(np.int64)
+
+
+def _long_length(m: int, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d: int, mu_base) -> LengthStats:
+    """Statistics of one length ``m >= 3`` for the probes ``sel``, by chunked propagation.
+
+    The ideal run (the error-free sequence, for the control variate) rides along with the
+    first chunk of probes, so long sequences are walked through once per chunk.
+    """
     k, _, d2 = perm.shape
     f = np.empty((k, sel.size))
     g = np.empty((k, sel.size))
@@ -594,22 +638,25 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
         lam_ideal = gate
     else:
         gate = None
-        lam_ideal = np.eye(d2)
+        lam_ideal = _eye(d2)
     # probes B o G (G first); the reference run needs no product
     phys = probes.ptms if gate is None else np.matmul(probes.ptms, lam_ideal)
     final = None if gate is None else gate
     z = _z_matrix(n)
     e0 = z[0].copy()  # Pauli vector of |0><0|: tr(P_i |0><0|) = <0|P_i|0>
-    mu_base = (np.einsum("pii->p", probes.ptms) - 1.0) / (d2 - 1)
-    ident = _identity_position(probes)
+    mu_base, ident = _probe_constants(probes)
     # information rule needs the length-1 and length-2 estimates first
     grouped: dict[int, list] = {m: [] for m in lengths}
     for b in blocks:
         grouped[b.length].append(b)
 
     def block_arrays(m: int):
-        idx = np.concatenate([b.cliffords for b in grouped[m]], axis=0)
-        cnt = np.concatenate([counts.for_block(plan, b) for b in grouped[m]], axis=0)  # type: ignore[attr-defined]
+        bl = grouped[m]
+        if len(bl) == 1:
+            idx, cnt = bl[0].cliffords, counts.for_block(plan, bl[0])  # type: ignore[attr-defined]
+        else:
+            idx = np.concatenate([b.cliffords for b in bl], axis=0)
+            cnt = np.concatenate([counts.for_block(plan, b) for b in bl], axis=0)  # type: ignore[attr-defined]
         shots = cnt.sum(axis=1)
         w = cnt / shots[:, None]
         perm, sign = _step_permutations(n, idx)
@@ -625,10 +672,10 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
         k = perm.shape[0]
         zw = w @ z  # (K, d2): sum_x w(x) Z[x, :]
         if m >= 3:
-            stats.append(_long_length(m, perm, sign, shots, zw, lam2, ident, probes.n_probes, phys,
-                                      lam_ideal, final, e0, z, d, mu_base))
+            sel = _kept_probes(m, lam2, ident, probes.n_probes)
+            stats.append(_long_length(m, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d, mu_base))
             continue
-        ideal_r = _propagate_signed(perm, sign, lam_ideal[None], final, e0)[0]  # as run, no error
+        ideal_r = _ideal_run(perm, sign, gate, final, e0)  # as run, no error
         p_ideal = np.clip(ideal_r @ z.T / d, 0.0, None)
         zp = p_ideal @ z
         if m == 1:

@@ -82,3 +82,21 @@ def test_unitary_probes_at_length_three_equal_direct_values():
     w = w / w.sum(axis=1, keepdims=True)
     direct = est.kappa(2) * (np.einsum("xi,kqi,kx->kq", z, r, w) / 2 - 0.5)
     np.testing.assert_allclose(corr.stats_for(3).values, direct, atol=1e-12)
+
+
+
+@pytest.mark.parametrize("n, m", [(1, 1), (1, 2), (2, 2), (2, 3)])
+def test_error_free_run_equals_dense_products(n, m):
+    # the ideal run of the short lengths (W_m G ... G W_1 e0, then the final map) against the
+    # dense definition, with and without an interleaved gate G
+    rng = np.random.default_rng(30 + n + m)
+    d2 = 4**n
+    order = 24 if n == 1 else 11520
+    idx = rng.integers(0, order, size=(25, m))
+    steps = clifford_ptms(n, idx.reshape(-1)).reshape(25, m, d2, d2)
+    perm, sign = est._step_permutations(n, idx)
+    e0 = est._z_matrix(n)[0]
+    gate = clifford_ptms(n, np.array([7]))[0]
+    for g, final in ((None, None), (gate, gate), (rotation("X" * n, 0.3).ptm, rotation("X" * n, 0.3).ptm)):
+        ref = _dense_reference(steps, (np.eye(d2) if g is None else g)[None], final, e0)[:, 0]
+        np.testing.assert_allclose(est._ideal_run(perm, sign, g, final, e0), ref, atol=1e-13)
