@@ -433,22 +433,23 @@ def _step_permutations(n: int, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]
 
 
 def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray, final: np.ndarray | None,
-                      e0: np.ndarray) -> np.ndarray:
+                      e0: np.ndarray, *, identity_probes: bool = False) -> np.ndarray:
     """Pauli vectors ``final W_m A W_(m-1) ... A W_1 e0``, layout ``(Q, K, d2)``.
 
     ``perm``, ``sign`` ``(K, m, d2)``: the Clifford steps as signed permutations; probe_ptms
     ``(Q, d2, d2)`` (gathered too when they are signed permutations); final ``(d2, d2)`` or None.
     Every gather is a ``take`` with flat indices computed once, so a step costs two numpy
-    calls whatever the length.
+    calls whatever the length.  ``identity_probes``: the caller knows every probe is the
+    identity (no probe step, no check).
     """
     k, m, d2 = perm.shape
     q = probe_ptms.shape[0]
     r = sign[:, 0] * e0[perm[:, 0]]  # (K, d2)
     r = np.broadcast_to(r, (q, k, d2)).copy().reshape(q, k * d2)  # a writable copy, also for q = 1
     if m > 1:
-        probe_op = _signed_permutations(probe_ptms)
-        if probe_op is not None and np.array_equal(probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)) \
-                and np.all(probe_op[1] == 1.0):
+        probe_op = None if identity_probes else _signed_permutations(probe_ptms)
+        if identity_probes or (probe_op is not None and np.array_equal(
+                probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)) and np.all(probe_op[1] == 1.0)):
             probe_op, identity = None, True  # only identity probes: the probe step is nothing
         else:
             identity = False
@@ -574,18 +575,24 @@ def _kept_probes(m: int, lam2, ident, n_probes: int) -> np.ndarray:
     return sel.astype(np.int64)
 
 
-def _long_length(m: int, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d: int, mu_base) -> LengthStats:
+def _long_length(m: int, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d: int, mu_base,
+                 ident: int | None = None) -> LengthStats:
     """Statistics of one length ``m >= 3`` for the probes ``sel``, by chunked propagation.
 
     The ideal run (the error-free sequence, for the control variate) rides along with the
-    first chunk of probes, so long sequences are walked through once per chunk.
+    first chunk of probes, so long sequences are walked through once per chunk.  ``ident``:
+    the identity probe's position; in reference mode (``final`` None, the ideal run the
+    identity) a length that keeps only it propagates without a probe step.
     """
     k, _, d2 = perm.shape
     f = np.empty((k, sel.size))
     g = np.empty((k, sel.size))
     qc = max(1, _CHUNK_ELEMENTS // (k * d2))  # probes per chunk: bounded working arrays
     first = min(sel.size, max(qc - 1, 1))
-    r = _propagate_signed(perm, sign, np.concatenate([lam_ideal[None], phys[sel[:first]]]), final, e0)
+    only_identity = (final is None and ident is not None and sel.size == 1 and int(sel[0]) == ident
+                     and np.array_equal(phys[ident], lam_ideal))
+    r = _propagate_signed(perm, sign, np.concatenate([lam_ideal[None], phys[sel[:first]]]), final, e0,
+                          identity_probes=only_identity)
     p_ideal = np.clip(r[0] @ z.T / d, 0.0, None)
     zp = p_ideal @ z
     f[:, :first] = _filtered(r[1:], zw, d)
@@ -673,7 +680,7 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
         zw = w @ z  # (K, d2): sum_x w(x) Z[x, :]
         if m >= 3:
             sel = _kept_probes(m, lam2, ident, probes.n_probes)
-            stats.append(_long_length(m, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d, mu_base))
+            stats.append(_long_length(m, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d, mu_base, ident))
             continue
         ideal_r = _ideal_run(perm, sign, gate, final, e0)  # as run, no error
         p_ideal = np.clip(ideal_r @ z.T / d, 0.0, None)
