@@ -84,7 +84,6 @@ def test_unitary_probes_at_length_three_equal_direct_values():
     np.testing.assert_allclose(corr.stats_for(3).values, direct, atol=1e-12)
 
 
-
 @pytest.mark.parametrize("n, m", [(1, 1), (1, 2), (2, 2), (2, 3)])
 def test_error_free_run_equals_dense_products(n, m):
     # the ideal run of the short lengths (W_m G ... G W_1 e0, then the final map) against the
