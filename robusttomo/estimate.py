@@ -447,12 +447,14 @@ def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray
     r = sign[:, 0] * e0[perm[:, 0]]  # (K, d2)
     r = np.broadcast_to(r, (q, k, d2)).copy().reshape(q, k * d2)  # a writable copy, also for q = 1
     if m > 1:
-        probe_op = None if identity_probes else _signed_permutations(probe_ptms)
-        if identity_probes or (probe_op is not None and np.array_equal(
-                probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)) and np.all(probe_op[1] == 1.0)):
-            probe_op, identity = None, True  # only identity probes: the probe step is nothing
+        if identity_probes:
+            probe_op, identity = None, True
         else:
-            identity = False
+            probe_op = _signed_permutations(probe_ptms)
+            identity = bool(probe_op is not None and np.all(probe_op[1] == 1.0) and np.array_equal(
+                probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)))
+            if identity:
+                probe_op = None  # only identity probes: the probe step is nothing
         if probe_op is not None:
             pidx = (np.arange(q)[:, None, None] * (k * d2) + np.arange(k)[None, :, None] * d2
                     + probe_op[0][:, None, :]).reshape(-1)
