@@ -433,28 +433,24 @@ def _step_permutations(n: int, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]
 
 
 def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray, final: np.ndarray | None,
-                      e0: np.ndarray, *, identity_probes: bool = False) -> np.ndarray:
+                      e0: np.ndarray) -> np.ndarray:
     """Pauli vectors ``final W_m A W_(m-1) ... A W_1 e0``, layout ``(Q, K, d2)``.
 
     ``perm``, ``sign`` ``(K, m, d2)``: the Clifford steps as signed permutations; probe_ptms
     ``(Q, d2, d2)`` (gathered too when they are signed permutations); final ``(d2, d2)`` or None.
     Every gather is a ``take`` with flat indices computed once, so a step costs two numpy
-    calls whatever the length.  ``identity_probes``: the caller knows every probe is the
-    identity (no probe step, no check).
+    calls whatever the length.
     """
     k, m, d2 = perm.shape
     q = probe_ptms.shape[0]
     r = sign[:, 0] * e0[perm[:, 0]]  # (K, d2)
     r = np.broadcast_to(r, (q, k, d2)).copy().reshape(q, k * d2)  # a writable copy, also for q = 1
     if m > 1:
-        if identity_probes:
-            probe_op, identity = None, True
-        else:
-            probe_op = _signed_permutations(probe_ptms)
-            identity = bool(probe_op is not None and np.all(probe_op[1] == 1.0) and np.array_equal(
-                probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)))
-            if identity:
-                probe_op = None  # only identity probes: the probe step is nothing
+        probe_op = _signed_permutations(probe_ptms)
+        identity = bool(probe_op is not None and np.all(probe_op[1] == 1.0) and np.array_equal(
+            probe_op[0], np.broadcast_to(np.arange(d2), probe_op[0].shape)))
+        if identity:
+            probe_op = None  # only identity probes: the probe step is nothing
         if probe_op is not None:
             pidx = (np.arange(q)[:, None, None] * (k * d2) + np.arange(k)[None, :, None] * d2
                     + probe_op[0][:, None, :]).reshape(-1)
@@ -467,11 +463,11 @@ def _propagate_signed(perm: np.ndarray, sign: np.ndarray, probe_ptms: np.ndarray
         for t in range(m - 1):
             if probe_op is not None:
                 # the indices are in range; mode "clip" lets take write into ``out`` unbuffered
-                np.take(r.reshape(-1), pidx, out=buf.reshape(-1), mode="clip")
+                r.reshape(-1).take(pidx, out=buf.reshape(-1), mode="clip")
                 np.multiply(buf.reshape(q, k, d2), psign, out=r.reshape(q, k, d2))
             elif not identity:
                 r = np.matmul(r.reshape(q, k, d2), dense_t).reshape(q, k * d2)
-            np.take(r, sidx[t], axis=1, out=buf, mode="clip")
+            r.take(sidx[t], axis=1, out=buf, mode="clip")
             np.multiply(buf, ssign[t], out=r)
     r = r.reshape(q, k, d2)
     if final is not None:
@@ -493,7 +489,7 @@ def _ideal_run(perm: np.ndarray, sign: np.ndarray, gate: np.ndarray | None, fina
         for t in range(1, m):
             if gate is not None:
                 r = r @ gate.T
-            r = np.take(r, perm[:, t] + rows)  # flat gather: r[k, perm[k, t, i]]
+            r = r.take(perm[:, t] + rows)  # flat gather: r[k, perm[k, t, i]]
             r *= sign[:, t]
     return r if final is None else r @ final.T
 
@@ -570,32 +566,56 @@ def _kept_probes(m: int, lam2, ident, n_probes: int) -> np.ndarray:
     if lam2 is None:
         sel = np.arange(n_probes) if ident is None else np.array([ident])
     else:
-        keep = (m - 1) * np.abs(np.clip(lam2, -1, 1)) ** (m - 2) >= INFO_THRESHOLD
+        keep = (m - 1) * np.minimum(np.abs(lam2), 1.0) ** (m - 2) >= INFO_THRESHOLD
         if ident is not None:
             keep[ident] = True
         sel = np.flatnonzero(keep)
     return sel.astype(np.int64)
 
 
+def _error_free_walk(perm: np.ndarray, sign: np.ndarray, e0: np.ndarray) -> np.ndarray:
+    """Pauli vectors ``W_m ... W_1 e0`` of the sequences ``(perm, sign)`` ``(K, m, d2)``: ``(K, d2)``.
+
+    The error-free reference run, which is also the identity probe's propagated vector: the
+    flat gather indices of every step computed at once, then two numpy calls per step.
+    """
+    k, m, d2 = perm.shape
+    r = (sign[:, 0] * e0[perm[:, 0]]).reshape(-1)
+    if m > 1:
+        sidx = np.swapaxes(perm[:, 1:] + np.arange(0, k * d2, d2)[:, None, None], 0, 1).reshape(m - 1, k * d2)
+        ssign = np.swapaxes(sign[:, 1:], 0, 1).reshape(m - 1, k * d2)
+        buf = np.empty_like(r)
+        for t in range(m - 1):
+            # the indices are in range; mode "clip" lets take write into ``out`` unbuffered
+            r.take(sidx[t], out=buf, mode="clip")
+            np.multiply(buf, ssign[t], out=r)
+    return r.reshape(k, d2)
+
+
 def _long_length(m: int, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d: int, mu_base,
-                 ident: int | None = None) -> LengthStats:
+                 ident: int | None = None, identity_is_ideal: bool = False) -> LengthStats:
     """Statistics of one length ``m >= 3`` for the probes ``sel``, by chunked propagation.
 
     The ideal run (the error-free sequence, for the control variate) rides along with the
     first chunk of probes, so long sequences are walked through once per chunk.  ``ident``:
-    the identity probe's position; in reference mode (``final`` None, the ideal run the
-    identity) a length that keeps only it propagates without a probe step.
+    the identity probe's position; ``identity_is_ideal``: the caller has checked that the
+    identity probe's physical PTM equals the ideal run's step (reference mode), so that a
+    length keeping only it needs only the error-free walk, which gives the probe's vector and
+    the ideal one at once.
     """
     k, _, d2 = perm.shape
+    if identity_is_ideal and final is None and sel.size == 1 and int(sel[0]) == ident:
+        r = _error_free_walk(perm, sign, e0)
+        zp = np.maximum(r @ z.T / d, 0.0) @ z
+        f = _filtered(r[None], zw, d)
+        g = _filtered(r[None], zp, d)
+        return LengthStats(m, sel, f, g, mu_base[sel] ** (m - 1), shots)
     f = np.empty((k, sel.size))
     g = np.empty((k, sel.size))
     qc = max(1, _CHUNK_ELEMENTS // (k * d2))  # probes per chunk: bounded working arrays
     first = min(sel.size, max(qc - 1, 1))
-    only_identity = (final is None and ident is not None and sel.size == 1 and int(sel[0]) == ident
-                     and np.array_equal(phys[ident], lam_ideal))
-    r = _propagate_signed(perm, sign, np.concatenate([lam_ideal[None], phys[sel[:first]]]), final, e0,
-                          identity_probes=only_identity)
-    p_ideal = np.clip(r[0] @ z.T / d, 0.0, None)
+    r = _propagate_signed(perm, sign, np.concatenate([lam_ideal[None], phys[sel[:first]]]), final, e0)
+    p_ideal = np.maximum(r[0] @ z.T / d, 0.0)
     zp = p_ideal @ z
     f[:, :first] = _filtered(r[1:], zw, d)
     g[:, :first] = _filtered(r[1:], zp, d)
@@ -654,6 +674,7 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
     z = _z_matrix(n)
     e0 = z[0].copy()  # Pauli vector of |0><0|: tr(P_i |0><0|) = <0|P_i|0>
     mu_base, ident = _probe_constants(probes)
+    identity_is_ideal = final is None and ident is not None and np.array_equal(phys[ident], lam_ideal)
     # information rule needs the length-1 and length-2 estimates first
     grouped: dict[int, list] = {m: [] for m in lengths}
     for b in blocks:
@@ -682,10 +703,11 @@ def compute_correlations(plan: object, counts: object, *, probes: ProbeSet | Non
         zw = w @ z  # (K, d2): sum_x w(x) Z[x, :]
         if m >= 3:
             sel = _kept_probes(m, lam2, ident, probes.n_probes)
-            stats.append(_long_length(m, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d, mu_base, ident))
+            stats.append(_long_length(m, perm, sign, shots, zw, sel, phys, lam_ideal, final, e0, z, d, mu_base, ident,
+                                      identity_is_ideal))
             continue
         ideal_r = _ideal_run(perm, sign, gate, final, e0)  # as run, no error
-        p_ideal = np.clip(ideal_r @ z.T / d, 0.0, None)
+        p_ideal = np.maximum(ideal_r @ z.T / d, 0.0)
         zp = p_ideal @ z
         if m == 1:
             f = _filtered(ideal_r[None], zw, d)
