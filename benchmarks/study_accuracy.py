@@ -211,11 +211,10 @@ def _fid_decay_only(t: dict, plan, counts, r_true: float) -> dict:
     estimate ``analyze(bootstrap=0)`` of the same data: the plan gives the whole channel too.
     """
     import robusttomo as rt
+    from robusttomo import metrics
 
     n = t["n"]
     d = 2**n
-    from robusttomo import metrics
-
     dec = rt.estimate_decays(plan, counts, bootstrap=t["bootstrap"], seed=t["seed"] + 12)
     k = dec.probes.labels.index("I")
     value = 1 - (d - 1) * (1 - float(dec.lambdas[k])) / d

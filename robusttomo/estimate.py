@@ -482,13 +482,15 @@ def _ideal_run(perm: np.ndarray, sign: np.ndarray, gate: np.ndarray | None, fina
     :func:`_propagate_signed` with the one probe ``G`` (the identity when None), without its
     set-up: the short lengths of every run need only this.
     """
+    if gate is None:
+        r = _error_free_walk(perm, sign, e0)
+        return r if final is None else r @ final.T
     k, m, d2 = perm.shape
     r = sign[:, 0] * e0[perm[:, 0]]
     if m > 1:
         rows = np.arange(0, k * d2, d2)[:, None]
         for t in range(1, m):
-            if gate is not None:
-                r = r @ gate.T
+            r = r @ gate.T
             r = r.take(perm[:, t] + rows)  # flat gather: r[k, perm[k, t, i]]
             r *= sign[:, t]
     return r if final is None else r @ final.T
